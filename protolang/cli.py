@@ -1,0 +1,134 @@
+"""Command line: a thin layer over the public API (check, parse, plan, run).
+
+User errors print as ``file:line:col: error: ...`` and exit with status 1; there is never a
+traceback for a user's mistake. Unexpected internal failures exit with status 3 and say so.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+
+
+def _err(msg: str) -> None:
+    print(msg, file=sys.stderr, flush=True)
+
+
+def cmd_check(args) -> int:
+    from .api import load
+    from .language.errors import ProtocolError, render
+
+    status = 0
+    for path in args.files:
+        try:
+            exp = load(path)
+            warnings = exp.check()
+            if args.resolve:
+                exp.plan()
+        except ProtocolError as exc:
+            _err(str(exc))
+            status = 1
+            continue
+        for w in warnings:
+            _err(render(w))
+        print(f"{path}: ok")
+    return status
+
+
+def cmd_parse(args) -> int:
+    from .api import load
+    from .language import dump, format_protocol
+
+    exp = load(args.file)
+    print(dump(exp.protocol) if args.dump else format_protocol(exp.protocol))
+    return 0
+
+
+def cmd_plan(args) -> int:
+    from .api import load
+
+    plan = load(args.file).plan()
+    if args.dump:
+        print(plan.to_json())
+        return 0
+    print(f"protocol   {plan.title}")
+    print(f"circuit    {plan.circuit_file} (seed {plan.seed})")
+    print(f"cells      " + ", ".join(f"{r.name}: {r.cell_class}" for r in plan.roles) + f"; {plan.n_repeat} repeats")
+    for s in plan.synapses:
+        print(f"synapse    {s.name} ({s.pathway}): {int(s.connected.sum())}/{plan.n_repeat} connected")
+    print(f"sweeps     {plan.n_sweeps} x {plan.sweep_length * 1e3:g} ms, every {plan.interval:g} s")
+    print(f"layout     {plan.layout}: {plan.layout_reason}")
+    print(f"bath       calcium {plan.conditions['calcium']:g} mM, magnesium {plan.conditions['magnesium']:g} mM, "
+          f"release factor {plan.conditions['release_factor']:.4f}, blocks {plan.conditions['blocks'] or 'none'}")
+    for note in plan.notes:
+        print(note)
+    return 0
+
+
+def cmd_run(args) -> int:
+    from .api import load
+
+    start = time.perf_counter()
+
+    def progress(msg: str) -> None:
+        if not args.quiet:
+            _err(f"[{time.perf_counter() - start:7.1f} s] {msg}")
+
+    exp = load(args.file)
+    result = exp.run(args.out, target=args.target, progress=progress, force=args.force)
+    for name, table in result.tables.items():
+        progress(f"table {name}: {len(table)} rows")
+    print(f"results written to {result.out_dir}")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(prog="protolang", description="In-silico paired-recording protocols on Brian2.")
+    sub = ap.add_subparsers(dest="command", required=True)
+    p = sub.add_parser("check", help="parse and check protocols against their circuits (no simulation)")
+    p.add_argument("files", nargs="+")
+    p.add_argument("--resolve", action="store_true", help="also resolve cell selections (slower)")
+    p.set_defaults(func=cmd_check)
+    p = sub.add_parser("parse", help="show the parsed protocol (canonical text, or the AST with --dump)")
+    p.add_argument("file")
+    p.add_argument("--dump", action="store_true")
+    p.set_defaults(func=cmd_parse)
+    p = sub.add_parser("plan", help="show the resolved plan (summary, or JSON with --dump)")
+    p.add_argument("file")
+    p.add_argument("--dump", action="store_true")
+    p.set_defaults(func=cmd_plan)
+    p = sub.add_parser("run", help="simulate a protocol and write its run folder")
+    p.add_argument("file")
+    p.add_argument("--out", required=True, help="run folder to create")
+    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython"],
+                   help="Brian2 code-generation target (auto: cython when a compiler works)")
+    p.add_argument("--force", action="store_true", help="replace an existing run folder")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.set_defaults(func=cmd_run)
+    return ap
+
+
+def main(argv: list[str] | None = None) -> int:
+    from .language.errors import ProtocolError
+
+    args = build_parser().parse_args(argv)
+    try:
+        return args.func(args)
+    except ProtocolError as exc:
+        _err(str(exc))
+        return 1
+    except KeyboardInterrupt:
+        _err("interrupted; nothing was written")
+        return 130
+    except Exception as exc:  # a bug of ours, not the user's: say so plainly
+        if os.environ.get("PROTOLANG_DEBUG"):
+            raise
+        _err(f"protolang internal error (please report; set PROTOLANG_DEBUG=1 for a traceback): "
+             f"{type(exc).__name__}: {exc}")
+        return 3
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,207 @@
+"""Protocol AST: frozen node classes built by the parser, each with a source span.
+
+Numbers stay as :class:`~protolang.language.units.Quantity` (value + unit as written);
+dimension checks happen in the lowering step (``parser.py``) and name checks against the
+circuit happen in ``protolang.plan.check``. Spans are excluded from equality so two
+protocols that differ only in layout compare equal.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from .errors import Span
+from .units import Quantity
+
+_span = field(default=None, compare=False, repr=False)
+
+
+def node(cls):
+    return dataclass(frozen=True, slots=True, kw_only=True)(cls)
+
+
+# --- bath ---------------------------------------------------------------------------
+@node
+class BathSetting:
+    """``calcium 2.0 mM`` / ``magnesium 1 mM``."""
+    name: str
+    value: Quantity
+    span: Span | None = _span
+
+
+@node
+class ReceptorBlock:
+    """``block NMDA`` (complete) or ``block GABA_A 60 %`` (fraction of conductance removed)."""
+    receptor: str
+    fraction: Quantity | None = None
+    span: Span | None = _span
+
+
+# --- cells --------------------------------------------------------------------------
+@node
+class Within:
+    """``within 150 um of pre``: soma-to-soma distance bound."""
+    distance: Quantity
+    of: str
+    span: Span | None = _span
+
+
+@node
+class ReceivingFrom:
+    """``receiving from pre``: the circuit has a connection pre -> this cell."""
+    source: str
+    span: Span | None = _span
+
+
+@node
+class CellPick:
+    """``post is pyramidal_deep within 150 um of pre, receiving from pre``."""
+    name: str
+    cell_class: str
+    constraints: tuple = ()
+    span: Span | None = _span
+    class_span: Span | None = _span
+
+
+@node
+class Cells:
+    picks: tuple[CellPick, ...]
+    repeat: int = 1
+    repeat_span: Span | None = _span
+    span: Span | None = _span
+
+
+# --- sweeps and simulation settings -------------------------------------------------
+@node
+class Sweeps:
+    """``sweeps 30 every 10 s`` with optional ``lasting 1.2 s``."""
+    count: int
+    interval: Quantity
+    length: Quantity | None = None
+    span: Span | None = _span
+
+
+@node
+class Setting:
+    """One option of ``simulate``: ``isolated``, ``timestep 0.025 ms``, ``sampling 10 kHz``."""
+    name: str
+    value: Quantity | str | None = None
+    span: Span | None = _span
+
+
+# --- recording ------------------------------------------------------------------------
+@node
+class Recording:
+    """``record post: current clamp, holding -70 mV, noise 0.1 mV``.
+
+    ``mode`` is ``"current clamp"`` or ``"off"``. ``holding`` is a current (injected) or a
+    voltage (reached by a bias current computed from the cell model).
+    """
+    cell: str
+    mode: str
+    holding: Quantity | None = None
+    noise: Quantity | None = None
+    span: Span | None = _span
+
+
+# --- stimuli --------------------------------------------------------------------------
+@node
+class Pulse:
+    """``pulse 1.5 nA for 2 ms at 100 ms``."""
+    amplitude: Quantity
+    duration: Quantity
+    at: Quantity
+    span: Span | None = _span
+
+
+@node
+class Train:
+    """``train 8 pulses of 1.5 nA for 2 ms at 20 Hz from 100 ms``."""
+    count: int
+    amplitude: Quantity
+    duration: Quantity
+    rate: Quantity
+    start: Quantity
+    span: Span | None = _span
+
+
+@node
+class SpikeTimes:
+    """``spikes at 100 ms, 150 ms, 600 ms``: the cell is made to fire at these times."""
+    times: tuple[Quantity, ...]
+    span: Span | None = _span
+
+
+@node
+class Stimulate:
+    cell: str
+    items: tuple
+    span: Span | None = _span
+
+
+# --- measures -------------------------------------------------------------------------
+@node
+class Option:
+    """``window 40 ms`` inside a measure line."""
+    name: str
+    value: Quantity
+    span: Span | None = _span
+
+
+@node
+class MeasureItem:
+    """``responses to pre, window 40 ms``: a collector, an optional source cell, options."""
+    collector: str
+    source: str | None = None
+    options: tuple[Option, ...] = ()
+    span: Span | None = _span
+    source_span: Span | None = _span
+
+
+@node
+class Measure:
+    cell: str
+    items: tuple[MeasureItem, ...]
+    span: Span | None = _span
+
+
+# --- the whole protocol ---------------------------------------------------------------
+@node
+class Protocol:
+    title: str
+    circuit: str
+    seed: int
+    sweeps: Sweeps
+    cells: Cells
+    bath: tuple = ()
+    settings: tuple[Setting, ...] = ()
+    recordings: tuple[Recording, ...] = ()
+    stimuli: tuple[Stimulate, ...] = ()
+    measures: tuple[Measure, ...] = ()
+    file: str = field(default="<string>", compare=False)
+    span: Span | None = _span
+    circuit_span: Span | None = _span
+
+
+def dump(obj, indent: int = 0) -> str:
+    """A stable, readable dump of an AST (``protolang parse --dump``)."""
+    pad = "  " * indent
+    if isinstance(obj, tuple):
+        if not obj:
+            return "()"
+        return "\n".join(f"{pad}- " + dump(x, indent + 1).lstrip() for x in obj)
+    if isinstance(obj, Quantity):
+        return str(obj)
+    if hasattr(obj, "__dataclass_fields__"):
+        lines = [type(obj).__name__]
+        for name, f in obj.__dataclass_fields__.items():
+            if not f.compare or name == "file":
+                continue
+            value = getattr(obj, name)
+            text = dump(value, indent + 2)
+            if "\n" in text or (isinstance(value, tuple) and value):
+                lines.append(f"{pad}  {name}:\n{text}")
+            else:
+                lines.append(f"{pad}  {name}: {text.strip()}")
+        return "\n".join(lines)
+    return repr(obj)

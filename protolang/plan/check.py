@@ -1,0 +1,161 @@
+"""Semantic checks of a protocol against its circuit: an ordered tuple of functions -> diagnostics.
+
+Each check takes ``(protocol, circuit, out)`` and appends to ``out`` (an errors.Collector);
+:func:`run_checks` runs them all and raises once. Nothing here imports Brian2.
+"""
+
+from __future__ import annotations
+
+from ..language import ast
+from ..language.errors import Collector, suggest
+from ..language.units import DIMENSIONS, expect
+from ..language.errors import ProtocolError
+from ..measure.registry import COLLECTORS
+
+
+def find_pathway(circuit, pre_class: str, post_class: str):
+    """The circuit's pathway from ``pre_class`` to ``post_class``, or None."""
+    for pw in circuit.pathways.values():
+        if pw.pre == pre_class and pw.post == post_class:
+            return pw
+    return None
+
+
+def _class_list(circuit) -> str:
+    return ", ".join(sorted(circuit.classes))
+
+
+def check_classes(p: ast.Protocol, circuit, out: Collector) -> None:
+    for pick in p.cells.picks:
+        if pick.cell_class not in circuit.classes:
+            out.fail(f"unknown cell class {pick.cell_class!r}", pick.class_span or pick.span,
+                     expected=f"a cell class of the circuit: {_class_list(circuit)}",
+                     hint=suggest(pick.cell_class, circuit.classes))
+
+
+def check_connectivity_constraints(p: ast.Protocol, circuit, out: Collector) -> None:
+    classes = {pick.name: pick.cell_class for pick in p.cells.picks}
+    for pick in p.cells.picks:
+        for c in pick.constraints:
+            if isinstance(c, ast.ReceivingFrom):
+                pre, post = classes.get(c.source), pick.cell_class
+                if pre in circuit.classes and post in circuit.classes and find_pathway(circuit, pre, post) is None:
+                    have = ", ".join(sorted(circuit.pathways)) or "none"
+                    out.fail(f"the circuit has no pathway {pre} -> {post}, so no {post} cell receives from {c.source!r}",
+                             c.span, expected=f"a pathway of the circuit: {have}",
+                             hint="drop `receiving from` or choose classes the circuit connects")
+
+
+def check_bath(p: ast.Protocol, circuit, out: Collector) -> None:
+    seen: dict[str, ast.ReceptorBlock] = {}
+    for item in p.bath:
+        if isinstance(item, ast.ReceptorBlock):
+            if item.receptor not in circuit.receptors:
+                out.fail(f"unknown receptor {item.receptor!r}", item.span,
+                         expected="a receptor of the circuit: " + ", ".join(sorted(circuit.receptors)),
+                         hint=suggest(item.receptor, circuit.receptors))
+            elif item.receptor in seen:
+                out.fail(f"receptor {item.receptor!r} is blocked twice", item.span,
+                         hint="keep one `block` line per receptor")
+            seen[item.receptor] = item
+        elif isinstance(item, ast.BathSetting):
+            if item.value.si < 0:
+                out.fail(f"{item.name} cannot be negative", item.value.span or item.span,
+                         expected=DIMENSIONS["concentration"])
+            if item.name == "calcium" and item.value.si == 0:
+                out.fail("calcium 0 mM abolishes evoked release entirely", item.value.span or item.span,
+                         expected="a positive concentration", hint="use a small value such as 0.5 mM")
+
+
+def check_stimuli(p: ast.Protocol, circuit, out: Collector) -> None:
+    seen: set[str] = set()
+    for block in p.stimuli:
+        if block.cell in seen:
+            out.fail(f"cell {block.cell!r} has two `stimulate` blocks", block.span,
+                     hint="list all its stimuli in one block")
+        seen.add(block.cell)
+        kinds = {type(i) for i in block.items}
+        if ast.SpikeTimes in kinds and kinds - {ast.SpikeTimes}:
+            out.fail(f"cell {block.cell!r} mixes `spikes at` with current stimuli", block.span,
+                     expected="either explicit spike times or current pulses",
+                     hint="`spikes at` makes the cell a spike source; use pulses to make it fire instead")
+    rec = {r.cell: r for r in p.recordings}
+    for block in p.stimuli:
+        r = rec.get(block.cell)
+        if r is not None and r.mode == "off" and any(not isinstance(i, ast.SpikeTimes) for i in block.items):
+            out.fail(f"cell {block.cell!r} is stimulated with current but its electrode is off", block.span,
+                     hint=f"use `record {block.cell}: current clamp`")
+
+
+def check_recordings(p: ast.Protocol, circuit, out: Collector) -> None:
+    seen: set[str] = set()
+    stim = {s.cell for s in p.stimuli if any(isinstance(i, ast.SpikeTimes) for i in s.items)}
+    for r in p.recordings:
+        if r.cell in seen:
+            out.fail(f"cell {r.cell!r} has two `record` lines", r.span, hint="keep one per cell")
+        seen.add(r.cell)
+        if r.cell in stim and r.mode != "off":
+            out.fail(f"cell {r.cell!r} is a spike source (`spikes at`) and has no membrane to record", r.span,
+                     hint=f"use `record {r.cell}: off` or drive it with current pulses")
+
+
+def check_measures(p: ast.Protocol, circuit, out: Collector) -> None:
+    recorded = {r.cell for r in p.recordings if r.mode != "off"}
+    stimulated = {s.cell for s in p.stimuli}
+    classes = {pick.name: pick.cell_class for pick in p.cells.picks}
+    for block in p.measures:
+        for item in block.items:
+            spec = COLLECTORS.get(item.collector)
+            if spec is None:
+                out.fail(f"unknown collector {item.collector!r}", item.span,
+                         expected="one of " + ", ".join(sorted(COLLECTORS)),
+                         hint=suggest(item.collector, COLLECTORS))
+                continue
+            if spec["needs_source"] and item.source is None:
+                out.fail(f"`{item.collector}` needs a presynaptic cell", item.span,
+                         expected=f"`{item.collector} to CELL`", hint=f"e.g. `{item.collector} to pre`")
+            if spec.get("needs_recording", spec["needs_source"]) and block.cell not in recorded:
+                out.fail(f"`{item.collector}` on {block.cell!r} needs a recorded cell", item.span,
+                         hint=f"add `record {block.cell}: current clamp`")
+            if item.source is not None:
+                if item.source not in stimulated:
+                    out.fail(f"{item.source!r} is not stimulated, so it evokes no responses", item.source_span or item.span,
+                             hint=f"add a `stimulate {item.source}:` block")
+                pre, post = classes.get(item.source), classes.get(block.cell)
+                if pre in circuit.classes and post in circuit.classes and find_pathway(circuit, pre, post) is None:
+                    out.fail(f"the circuit has no pathway {pre} -> {post}", item.source_span or item.span,
+                             expected="a pathway of the circuit: " + ", ".join(sorted(circuit.pathways)))
+            for opt in item.options:
+                if opt.name not in spec["options"]:
+                    out.fail(f"`{item.collector}` has no option {opt.name!r}", opt.span,
+                             expected="one of " + (", ".join(spec["options"]) or "no options"),
+                             hint=suggest(opt.name, spec["options"]))
+                    continue
+                dim = spec["options"][opt.name][0]
+                try:
+                    expect(opt.value, dim, f"option {opt.name!r}")
+                except ProtocolError as exc:
+                    out.diagnostics.extend(exc.diagnostics)
+
+
+CHECKS = (
+    check_classes,
+    check_connectivity_constraints,
+    check_bath,
+    check_stimuli,
+    check_recordings,
+    check_measures,
+)
+
+
+def run_checks(protocol: ast.Protocol, circuit) -> Collector:
+    """Run every check in order; raise one ProtocolError listing all errors.
+
+    Returns:
+        The collector (its warnings are for the caller to show).
+    """
+    out = Collector()
+    for check in CHECKS:
+        check(protocol, circuit, out)
+    out.raise_if_any()
+    return out

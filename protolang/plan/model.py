@@ -1,0 +1,157 @@
+"""Plan objects: the fully resolved experiment (SI numbers, concrete cells, waveforms, layout).
+
+The plan is the contract between the front end and the Brian2 engine. Everything is
+plain Python and numpy: no Brian2 here. Conventions:
+
+* all values SI (s, V, A, S, F, mol/m^3 = mM, m);
+* ``n_repeat`` independent instances of the selected cell group ("pairs");
+  every per-instance array has shape ``(n_repeat,)``;
+* in the ``replicas`` layout the engine simulates ``n_repeat * n_sweeps`` copies, replica
+  index ``r = repeat * n_sweeps + sweep``; in the ``sequential`` layout it simulates
+  ``n_repeat`` copies for ``n_sweeps * interval`` of continuous time.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field, fields, is_dataclass
+
+import numpy as np
+
+
+@dataclass
+class StimulusEvent:
+    """One nominal presynaptic event (a pulse onset or an explicit spike), sweep time in s."""
+
+    time: float
+    index: int          # 1-based event number within the sweep
+    item: int           # 0-based index of the stimulus line that made it
+    kind: str           # "pulse" | "train" | "spike"
+    probe: bool = False  # a lone pulse after a train: used for the recovery ratio
+
+
+@dataclass
+class CurrentPulse:
+    """A square current pulse (A) from ``start`` for ``duration`` seconds."""
+
+    start: float
+    duration: float
+    amplitude: float
+
+
+@dataclass
+class RolePlan:
+    """One selected cell role (``pre``, ``post``...) across all repeats."""
+
+    name: str
+    cell_class: str
+    model: str                                   # "adex"
+    cell_ids: np.ndarray                         # (n_repeat,) int, ids in the circuit
+    positions: np.ndarray                        # (n_repeat, 3) m
+    params: dict[str, np.ndarray]                # model parameters, SI, each (n_repeat,)
+    recorded: bool = False
+    mode: str = "current clamp"                  # or "off"
+    holding_current: np.ndarray | None = None    # (n_repeat,) A, includes bias for a held potential
+    holding_potential: float | None = None       # V, when holding was asked as a potential
+    noise_sd: float = 0.0                        # V, Gaussian recording noise added to the trace
+    pulses: list[CurrentPulse] = field(default_factory=list)
+    spike_times: np.ndarray | None = None        # explicit firing times (s): the role is a spike source
+    events: list[StimulusEvent] = field(default_factory=list)
+
+
+@dataclass
+class ReceptorPlan:
+    """Kinetics of one receptor type, shared by all synapses onto a cell (SI)."""
+
+    name: str                 # "AMPA", "NMDA", "GABA_A"
+    rise: float               # s
+    decay: float              # s
+    reversal: float           # V
+    scale: float = 1.0        # 1 - blocked fraction
+    mg_block: bool = False    # Jahr-Stevens magnesium block (NMDA)
+    peak_factor: float = 1.0  # jump in x that gives a unit peak of g (see engine)
+
+
+@dataclass
+class SynapsePlan:
+    """The connection ``pre -> post`` in every repeat."""
+
+    name: str                          # "pre_to_post"
+    pre: str
+    post: str
+    pathway: str                       # circuit pathway name, e.g. "pyramidal_deep->pyramidal_deep"
+    connected: np.ndarray              # (n_repeat,) bool
+    n_sites: np.ndarray                # (n_repeat,) int release sites
+    site_conductance: np.ndarray       # (n_repeat,) S, peak conductance of one released site
+    U: np.ndarray                      # (n_repeat,) release probability after the calcium law
+    U_reference: np.ndarray            # (n_repeat,) U at the circuit's reference calcium
+    D: np.ndarray                      # (n_repeat,) s recovery time constant
+    F: np.ndarray                      # (n_repeat,) s facilitation time constant (0 = none)
+    delay: np.ndarray                  # (n_repeat,) s, latency + distance / velocity
+    receptors: dict[str, float]        # receptor -> relative peak conductance (AMPA 1.0, NMDA 0.4)
+    stochastic: bool = True
+
+
+@dataclass
+class MeasurePlan:
+    cell: str
+    collector: str
+    source: str | None
+    options: dict[str, float]          # SI values
+    span: str = ""
+
+
+@dataclass
+class Plan:
+    title: str
+    protocol_file: str
+    protocol_hash: str
+    circuit_file: str
+    circuit_hash: str
+    seed: int
+    dt: float
+    sample_dt: float
+    sweep_length: float
+    n_sweeps: int
+    interval: float
+    n_repeat: int
+    layout: str                        # "replicas" | "sequential"
+    layout_reason: str
+    mode: str                          # "isolated"
+    conditions: dict[str, float | str | dict]
+    roles: list[RolePlan]
+    receptors: dict[str, ReceptorPlan]
+    synapses: list[SynapsePlan]
+    measures: list[MeasurePlan]
+    spans: dict[str, str] = field(default_factory=dict)   # Brian2 object name -> "file:line:col"
+    notes: list[str] = field(default_factory=list)
+
+    def role(self, name: str) -> RolePlan:
+        for r in self.roles:
+            if r.name == name:
+                return r
+        raise KeyError(name)
+
+    @property
+    def n_replicas(self) -> int:
+        return self.n_repeat * self.n_sweeps if self.layout == "replicas" else self.n_repeat
+
+    def to_dict(self) -> dict:
+        return _plain(self)
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict(), indent=1, sort_keys=False)
+
+
+def _plain(obj):
+    if is_dataclass(obj):
+        return {f.name: _plain(getattr(obj, f.name)) for f in fields(obj)}
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.generic):
+        return obj.item()
+    return obj

@@ -1,0 +1,311 @@
+"""Resolution: protocol AST + circuit -> Plan (SI numbers, concrete cells, waveforms, sweep layout).
+
+The steps run in pipeline order: settings, bath, selection, recording, stimuli, synapses,
+measures, layout. Every number handed to the engine is SI. No Brian2 here.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+
+import numpy as np
+
+from ..language import ast
+from ..language.errors import Collector, ProtocolError, error
+from ..language.units import display, expect
+from ..measure.registry import COLLECTORS
+from .check import find_pathway, run_checks
+from .model import (CurrentPulse, MeasurePlan, Plan, ReceptorPlan, RolePlan, StimulusEvent,
+                    SynapsePlan)
+from .select import select_cells
+
+DEFAULT_DT = 0.025e-3          # s; a common choice for conductance-based point neurons
+DEFAULT_SAMPLING = 10e3        # Hz
+DEFAULT_TAIL = 0.3             # s after the last stimulus when `lasting` is not given
+RECOVERY_FACTOR = 5.0          # independent sweeps need a gap of 5 slowest time constants
+
+
+def hill(calcium: float, half: float, n: float) -> float:
+    """Hill law of release vs extracellular calcium: c^n / (c^n + K^n) (Dodge and Rahamimoff 1967)."""
+    return calcium ** n / (calcium ** n + half ** n)
+
+
+def release_factor(calcium: float, release) -> float:
+    """Factor applied to U at ``calcium`` relative to the circuit's reference calcium."""
+    return hill(calcium, release.half_activation, release.hill) / hill(
+        release.calcium_reference, release.half_activation, release.hill)
+
+
+def peak_factor(rise: float, decay: float) -> float:
+    """Jump of x (1/s) per unit peak conductance for dg/dt = -g/decay + x, dx/dt = -x/rise."""
+    if math.isclose(rise, decay):
+        return math.e / rise
+    tp = rise * decay / (decay - rise) * math.log(decay / rise)
+    return 1.0 / (rise * decay / (decay - rise) * (math.exp(-tp / decay) - math.exp(-tp / rise)))
+
+
+def adex_bias(params: dict[str, np.ndarray], v: float) -> np.ndarray:
+    """Constant current that makes ``v`` the adaptive exponential model's rest (w at steady state)."""
+    gL, EL, VT, dT, a = (params[k] for k in ("gL", "EL", "VT", "DeltaT", "a"))
+    return gL * (v - EL) - gL * dT * np.exp((v - VT) / dT) + a * (v - EL)
+
+
+def adex_holdable_limit(params: dict[str, np.ndarray]) -> np.ndarray:
+    """Highest potential a constant current can hold (fold of the I-V curve)."""
+    gL, VT, dT, a = (params[k] for k in ("gL", "VT", "DeltaT", "a"))
+    return VT + dT * np.log((gL + a) / gL)
+
+
+# --- settings -----------------------------------------------------------------------
+def _settings(p: ast.Protocol) -> dict:
+    out = {"dt": DEFAULT_DT, "sample_dt": 1.0 / DEFAULT_SAMPLING, "mode": "isolated",
+           "deterministic": False}
+    for s in p.settings:
+        if s.name == "timestep":
+            out["dt"] = expect(s.value, "time", "timestep")
+            if not 0 < out["dt"] <= 0.2e-3:
+                raise error("timestep must lie between 0 and 0.2 ms for these cell models", s.value.span,
+                            expected="a time step such as 0.025 ms")
+        elif s.name == "sampling":
+            rate = expect(s.value, "frequency", "sampling")
+            if rate <= 0:
+                raise error("sampling rate must be positive", s.value.span, expected="e.g. 10 kHz")
+            out["sample_dt"] = 1.0 / rate
+        elif s.name == "deterministic":
+            out["deterministic"] = True
+        elif s.name == "isolated":
+            out["mode"] = "isolated"
+    if out["sample_dt"] < out["dt"] * (1 - 1e-9):
+        span = next((s.span for s in p.settings if s.name == "sampling"), None)
+        raise error("sampling is faster than the simulation time step", span,
+                    expected=f"at most {1 / out['dt'] / 1e3:g} kHz for a {out['dt'] * 1e3:g} ms time step")
+    # round the sampling interval to a whole number of steps
+    out["sample_dt"] = out["dt"] * max(1, round(out["sample_dt"] / out["dt"]))
+    return out
+
+
+def _bath(p: ast.Protocol, circuit) -> dict:
+    cond = {"calcium": circuit.bath.calcium, "magnesium": circuit.bath.magnesium, "blocks": {}}
+    for item in p.bath:
+        if isinstance(item, ast.BathSetting):
+            cond[item.name] = item.value.si
+        else:
+            frac = 1.0 if item.fraction is None else item.fraction.si
+            cond["blocks"][item.receptor] = frac
+    rel = circuit.release
+    cond["release_factor"] = release_factor(cond["calcium"], rel)
+    cond["release_law"] = {"calcium_reference": rel.calcium_reference,
+                           "half_activation": rel.half_activation, "hill": rel.hill}
+    return cond
+
+
+# --- stimuli ------------------------------------------------------------------------
+def _stimuli(block: ast.Stimulate | None) -> tuple[list[CurrentPulse], np.ndarray | None, list[StimulusEvent]]:
+    if block is None:
+        return [], None, []
+    pulses: list[CurrentPulse] = []
+    raw: list[tuple[float, int, str]] = []
+    spikes = None
+    for k, item in enumerate(block.items):
+        if isinstance(item, ast.Pulse):
+            pulses.append(CurrentPulse(item.at.si, item.duration.si, item.amplitude.si))
+            raw.append((item.at.si, k, "pulse"))
+        elif isinstance(item, ast.Train):
+            period = 1.0 / item.rate.si
+            for n in range(item.count):
+                t0 = item.start.si + n * period
+                pulses.append(CurrentPulse(t0, item.duration.si, item.amplitude.si))
+                raw.append((t0, k, "train"))
+        elif isinstance(item, ast.SpikeTimes):
+            spikes = np.array([t.si for t in item.times])
+            raw.extend((t, k, "spike") for t in spikes)
+    raw.sort()
+    events = [StimulusEvent(time=t, index=i + 1, item=k, kind=kind) for i, (t, k, kind) in enumerate(raw)]
+    # A lone pulse that follows a train is the recovery probe.
+    trains_end = [max(e.time for e in events if e.item == k) for k in {e.item for e in events if e.kind == "train"}]
+    for e in events:
+        if e.kind == "pulse" and any(e.time > t for t in trains_end):
+            e.probe = True
+    # pulses on one cell must not overlap
+    order = sorted(pulses, key=lambda q: q.start)
+    for a, b in zip(order, order[1:]):
+        if b.start < a.start + a.duration - 1e-12:
+            raise error(f"two current pulses on {block.cell!r} overlap at {b.start * 1e3:g} ms", block.span,
+                        expected="pulses that end before the next one starts",
+                        hint="shift one pulse or shorten it")
+    return pulses, spikes, events
+
+
+def _stimulus_end(roles_stim: dict) -> float:
+    end = 0.0
+    for pulses, spikes, _ in roles_stim.values():
+        for q in pulses:
+            end = max(end, q.start + q.duration)
+        if spikes is not None and len(spikes):
+            end = max(end, float(spikes[-1]))
+    return end
+
+
+# --- the whole plan ------------------------------------------------------------------
+def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str | None = None) -> Plan:
+    """Resolve ``protocol`` against ``circuit`` into a Plan.
+
+    Args:
+        protocol: the parsed protocol.
+        circuit: the loaded circuit (``protolang.circuit.load_circuit``).
+        instance: an instantiated circuit; built from ``protocol.seed`` when omitted.
+        source_text: the protocol text, for the plan's hash.
+
+    Returns:
+        The Plan.
+
+    Raises:
+        ProtocolError: every semantic problem found, at once where possible.
+    """
+    from ..circuit import instantiate
+
+    warnings = run_checks(protocol, circuit)
+    if instance is None:
+        instance = instantiate(circuit, protocol.seed)
+    settings = _settings(protocol)
+    cond = _bath(protocol, circuit)
+    sel_rng = np.random.default_rng(np.random.SeedSequence([protocol.seed, 0x5E1EC7]))
+    selection = select_cells(protocol.cells, instance, sel_rng)
+    n_repeat = protocol.cells.repeat
+
+    stim_blocks = {s.cell: s for s in protocol.stimuli}
+    rec_lines = {r.cell: r for r in protocol.recordings}
+    picks = {p.name: p for p in protocol.cells.picks}
+    roles_stim = {name: _stimuli(stim_blocks.get(name)) for name in selection.names}
+
+    # sweeps
+    sw = protocol.sweeps
+    interval = expect(sw.interval, "time", "sweep interval")
+    stim_end = _stimulus_end(roles_stim)
+    if sw.length is not None:
+        length = expect(sw.length, "time", "sweep length")
+        if length < stim_end:
+            raise error(f"sweeps last {length * 1e3:g} ms but the stimuli run until {stim_end * 1e3:g} ms",
+                        sw.length.span, expected=f"a length of at least {stim_end * 1e3:g} ms")
+    else:
+        length = stim_end + DEFAULT_TAIL
+    if interval < length - 1e-12:
+        raise error(f"sweeps every {display(interval, 'time')} are shorter than one sweep ({display(length, 'time')})",
+                    sw.interval.span, expected=f"an interval of at least {display(length, 'time')}",
+                    hint="lengthen the interval or shorten the sweep with `lasting`")
+
+    out = Collector()
+    out.diagnostics.extend(warnings.warnings)
+    roles: list[RolePlan] = []
+    spans: dict[str, str] = {}
+    for name in selection.names:
+        ids = selection.ids[name]
+        pick = picks[name]
+        params = instance.params_of(ids)
+        rec = rec_lines.get(name)
+        pulses, spikes, events = roles_stim[name]
+        holding = np.zeros(n_repeat)
+        hold_v = None
+        noise = 0.0
+        if rec is not None:
+            if rec.holding is not None:
+                if rec.holding.dimension == "voltage":
+                    hold_v = rec.holding.si
+                    limit = adex_holdable_limit(params)
+                    if np.any(hold_v >= limit):
+                        raise error(f"{pick.cell_class} cells cannot be held at {rec.holding} by a constant current",
+                                    rec.holding.span,
+                                    expected=f"a potential below {limit.min() * 1e3:.1f} mV (the cell model fires above it)",
+                                    hint="hold at a more negative potential")
+                    holding = adex_bias(params, hold_v)
+                else:
+                    holding = np.full(n_repeat, rec.holding.si)
+            if rec.noise is not None:
+                noise = expect(rec.noise, "voltage", "recording noise")
+        roles.append(RolePlan(
+            name=name, cell_class=pick.cell_class, model=circuit.classes[pick.cell_class].model,
+            cell_ids=ids, positions=instance.positions[ids], params=params,
+            recorded=rec is not None and rec.mode != "off", mode=rec.mode if rec else "current clamp",
+            holding_current=holding, holding_potential=hold_v, noise_sd=noise,
+            pulses=pulses, spike_times=spikes, events=events))
+        spans[f"cell_{name}"] = str(pick.span)
+
+    # receptors and blocks
+    receptors = {}
+    for rname, r in circuit.receptors.items():
+        receptors[rname] = ReceptorPlan(name=rname, rise=r.rise, decay=r.decay, reversal=r.reversal,
+                                        scale=1.0 - cond["blocks"].get(rname, 0.0), mg_block=r.mg_block,
+                                        peak_factor=peak_factor(r.rise, r.decay))
+
+    # synapses between every ordered pair of selected cells the circuit connects
+    synapses: list[SynapsePlan] = []
+    for pre in selection.names:
+        for post in selection.names:
+            if pre == post:
+                continue
+            pw = find_pathway(circuit, picks[pre].cell_class, picks[post].cell_class)
+            if pw is None:
+                continue
+            pre_ids, post_ids = selection.ids[pre], selection.ids[post]
+            connected = instance.connected(pre_ids, post_ids)
+            cp = instance.connection_params(pre_ids, post_ids)
+            U_ref = np.where(connected, cp["U"], 0.0)
+            synapses.append(SynapsePlan(
+                name=f"{pre}_to_{post}", pre=pre, post=post, pathway=pw.name, connected=connected,
+                n_sites=np.where(connected, cp["n_sites"], 0).astype(int),
+                site_conductance=np.where(connected, cp["site_conductance"], 0.0),
+                U=np.clip(U_ref * cond["release_factor"], 0.0, 1.0), U_reference=U_ref,
+                D=np.where(connected, cp["D"], 1.0), F=np.where(connected, cp["F"], 0.0),
+                delay=np.where(connected, cp["delay"], 0.0), receptors=dict(pw.receptors),
+                stochastic=not settings["deterministic"]))
+            span = next((c.span for c in picks[post].constraints
+                         if isinstance(c, ast.ReceivingFrom) and c.source == pre), picks[post].span)
+            spans[f"syn_{pre}_to_{post}"] = str(span)
+
+    measures: list[MeasurePlan] = []
+    for block in protocol.measures:
+        for item in block.items:
+            spec = COLLECTORS[item.collector]
+            opts = {k: v[1] for k, v in spec["options"].items()}
+            for o in item.options:
+                opts[o.name] = o.value.si
+            measures.append(MeasurePlan(cell=block.cell, collector=item.collector, source=item.source,
+                                        options=opts, span=str(item.span)))
+            if item.source is not None and not any(s.pre == item.source and s.post == block.cell for s in synapses):
+                raise AssertionError("internal error: measured pathway has no synapse plan")
+
+    layout, reason = _layout(settings, interval, length, roles, receptors, synapses)
+    text_hash = hashlib.sha256((source_text or "").encode()).hexdigest() if source_text else ""
+    notes = [f"{d.span}: warning: {d.message}" for d in out.warnings]
+    return Plan(
+        title=protocol.title, protocol_file=protocol.file, protocol_hash=text_hash,
+        circuit_file=circuit.path, circuit_hash=circuit.sha256, seed=protocol.seed,
+        dt=settings["dt"], sample_dt=settings["sample_dt"], sweep_length=length,
+        n_sweeps=sw.count, interval=interval, n_repeat=n_repeat, layout=layout, layout_reason=reason,
+        mode=settings["mode"], conditions=cond, roles=roles, receptors=receptors, synapses=synapses,
+        measures=measures, spans=spans, notes=notes)
+
+
+def _layout(settings, interval, length, roles, receptors, synapses) -> tuple[str, str]:
+    """Replicas when every sweep starts from a fully recovered state; else continuous time."""
+    slow: list[tuple[float, str]] = []
+    for r in roles:
+        if r.model == "adex" and r.spike_times is None:
+            slow.append((float(np.max(r.params["tau_w"])), f"adaptation of {r.name}"))
+            slow.append((float(np.max(r.params["C"] / r.params["gL"])), f"membrane of {r.name}"))
+    for s in synapses:
+        if s.connected.any():
+            slow.append((float(np.max(s.D[s.connected])), f"recovery D of {s.name}"))
+            slow.append((float(np.max(s.F[s.connected])), f"facilitation F of {s.name}"))
+    for rc in receptors.values():
+        slow.append((rc.decay, f"{rc.name} decay"))
+    tau, what = max(slow) if slow else (0.0, "nothing")
+    gap = interval - length
+    if settings["mode"] == "isolated" and gap >= RECOVERY_FACTOR * tau:
+        return "replicas", (f"isolated cells and a {gap * 1e3:g} ms gap between sweeps >= {RECOVERY_FACTOR:g} x the "
+                            f"slowest time constant ({what}, {tau * 1e3:g} ms): sweeps are independent, so all "
+                            f"repeats x sweeps run as replicas of one network in one run")
+    return "sequential", (f"the {gap * 1e3:g} ms gap between sweeps is shorter than {RECOVERY_FACTOR:g} x the slowest "
+                          f"time constant ({what}, {tau * 1e3:g} ms): a sweep still feels the previous one, so "
+                          f"sweeps run one after another in continuous time")
