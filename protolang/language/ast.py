@@ -13,7 +13,11 @@ from dataclasses import dataclass, field
 from .errors import Span
 from .units import Quantity
 
-_span = field(default=None, compare=False, repr=False)
+
+def _span():
+    # A fresh Field per use: one shared Field object would be renamed by every class
+    # that uses it, leaving each node with a single field called "circuit_span".
+    return field(default=None, compare=False, repr=False)
 
 
 def node(cls):
@@ -26,7 +30,7 @@ class BathSetting:
     """``calcium 2.0 mM`` / ``magnesium 1 mM``."""
     name: str
     value: Quantity
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 @node
@@ -34,7 +38,7 @@ class ReceptorBlock:
     """``block NMDA`` (complete) or ``block GABA_A 60 %`` (fraction of conductance removed)."""
     receptor: str
     fraction: Quantity | None = None
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 # --- cells --------------------------------------------------------------------------
@@ -43,14 +47,14 @@ class Within:
     """``within 150 um of pre``: soma-to-soma distance bound."""
     distance: Quantity
     of: str
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 @node
 class ReceivingFrom:
     """``receiving from pre``: the circuit has a connection pre -> this cell."""
     source: str
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 @node
@@ -59,16 +63,16 @@ class CellPick:
     name: str
     cell_class: str
     constraints: tuple = ()
-    span: Span | None = _span
-    class_span: Span | None = _span
+    span: Span | None = _span()
+    class_span: Span | None = _span()
 
 
 @node
 class Cells:
     picks: tuple[CellPick, ...]
     repeat: int = 1
-    repeat_span: Span | None = _span
-    span: Span | None = _span
+    repeat_span: Span | None = _span()
+    span: Span | None = _span()
 
 
 # --- sweeps and simulation settings -------------------------------------------------
@@ -78,7 +82,7 @@ class Sweeps:
     count: int
     interval: Quantity
     length: Quantity | None = None
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 @node
@@ -86,7 +90,7 @@ class Setting:
     """One option of ``simulate``: ``isolated``, ``timestep 0.025 ms``, ``sampling 10 kHz``."""
     name: str
     value: Quantity | str | None = None
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 # --- recording ------------------------------------------------------------------------
@@ -101,7 +105,7 @@ class Recording:
     mode: str
     holding: Quantity | None = None
     noise: Quantity | None = None
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 # --- stimuli --------------------------------------------------------------------------
@@ -111,7 +115,7 @@ class Pulse:
     amplitude: Quantity
     duration: Quantity
     at: Quantity
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 @node
@@ -122,21 +126,21 @@ class Train:
     duration: Quantity
     rate: Quantity
     start: Quantity
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 @node
 class SpikeTimes:
     """``spikes at 100 ms, 150 ms, 600 ms``: the cell is made to fire at these times."""
     times: tuple[Quantity, ...]
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 @node
 class Stimulate:
     cell: str
     items: tuple
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 # --- measures -------------------------------------------------------------------------
@@ -145,7 +149,7 @@ class Option:
     """``window 40 ms`` inside a measure line."""
     name: str
     value: Quantity
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 @node
@@ -154,15 +158,15 @@ class MeasureItem:
     collector: str
     source: str | None = None
     options: tuple[Option, ...] = ()
-    span: Span | None = _span
-    source_span: Span | None = _span
+    span: Span | None = _span()
+    source_span: Span | None = _span()
 
 
 @node
 class Measure:
     cell: str
     items: tuple[MeasureItem, ...]
-    span: Span | None = _span
+    span: Span | None = _span()
 
 
 # --- the whole protocol ---------------------------------------------------------------
@@ -179,8 +183,8 @@ class Protocol:
     stimuli: tuple[Stimulate, ...] = ()
     measures: tuple[Measure, ...] = ()
     file: str = field(default="<string>", compare=False)
-    span: Span | None = _span
-    circuit_span: Span | None = _span
+    span: Span | None = _span()
+    circuit_span: Span | None = _span()
 
 
 def dump(obj, indent: int = 0) -> str:

@@ -1,0 +1,144 @@
+"""Protocol AST -> canonical protolang text that parses back to an equal AST."""
+
+from __future__ import annotations
+
+from . import ast
+from .units import Quantity
+
+__all__ = ["format_protocol"]
+
+INDENT = "    "
+
+
+def format_protocol(p: ast.Protocol) -> str:
+    """Write a protocol as canonical protolang text.
+
+    The output follows docs/language.md: head lines, then ``bath:``, ``cells:``,
+    ``sweeps``, ``simulate``, ``record``, ``stimulate`` and ``measure``, separated by
+    blank lines, with 4-space indentation. ``parse(format_protocol(p)) == p`` holds
+    for every protocol the parser produces.
+
+    Args:
+        p: The protocol AST.
+
+    Returns:
+        The text, ending with a newline.
+
+    Raises:
+        ValueError: If a node holds something the language cannot spell (a title with a
+            line break, a number that is not finite, an unknown stimulus or bath item).
+    """
+    sections = [
+        [f"protocol {_string(p.title)}", f"circuit {_string(p.circuit)} seed {p.seed}"],
+    ]
+    if p.bath:
+        sections.append(["bath:"] + [INDENT + _bath_item(item) for item in p.bath])
+    sections.append(_cells(p.cells))
+    sections.append([_sweeps(p.sweeps)])
+    if p.settings:
+        sections.append(["simulate " + ", ".join(_setting(s) for s in p.settings)])
+    if p.recordings:
+        sections.append([_recording(r) for r in p.recordings])
+    for stim in p.stimuli:
+        sections.append([f"stimulate {stim.cell}:"] + [INDENT + _stimulus(i) for i in stim.items])
+    for measure in p.measures:
+        sections.append([f"measure {measure.cell}:"]
+                        + [INDENT + _measure_item(i) for i in measure.items])
+    return "\n\n".join("\n".join(lines) for lines in sections) + "\n"
+
+
+def _string(text: str) -> str:
+    if "\n" in text or "\r" in text:
+        raise ValueError(f"a protolang string cannot hold a line break: {text!r}")
+    return '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
+def _number(value: float) -> str:
+    # repr() is the shortest text that reads back to the same float; whole numbers drop ".0".
+    value = float(value)
+    if value != value or value in (float("inf"), float("-inf")):
+        raise ValueError(f"cannot write the number {value!r}")
+    if value.is_integer() and abs(value) < 1e16:
+        return str(int(value))
+    return repr(value)
+
+
+def _quantity(q: Quantity) -> str:
+    return f"{_number(q.value)} {q.unit}" if q.unit else _number(q.value)
+
+
+def _bath_item(item) -> str:
+    if isinstance(item, ast.BathSetting):
+        return f"{item.name} {_quantity(item.value)}"
+    if isinstance(item, ast.ReceptorBlock):
+        if item.fraction is None:
+            return f"block {item.receptor}"
+        return f"block {item.receptor} {_quantity(item.fraction)}"
+    raise ValueError(f"unknown bath item {item!r}")
+
+
+def _cells(cells: ast.Cells) -> list[str]:
+    lines = ["cells:"]
+    for pick in cells.picks:
+        line = f"{pick.name} is {pick.cell_class}"
+        if pick.constraints:
+            line += " " + ", ".join(_constraint(c) for c in pick.constraints)
+        lines.append(INDENT + line)
+    if cells.repeat != 1:
+        lines.append(f"{INDENT}repeat {cells.repeat}")
+    return lines
+
+
+def _constraint(c) -> str:
+    if isinstance(c, ast.Within):
+        return f"within {_quantity(c.distance)} of {c.of}"
+    if isinstance(c, ast.ReceivingFrom):
+        return f"receiving from {c.source}"
+    raise ValueError(f"unknown cell constraint {c!r}")
+
+
+def _sweeps(s: ast.Sweeps) -> str:
+    line = f"sweeps {s.count} every {_quantity(s.interval)}"
+    if s.length is not None:
+        line += f", lasting {_quantity(s.length)}"
+    return line
+
+
+def _setting(s: ast.Setting) -> str:
+    if s.value is None:
+        return s.name
+    if isinstance(s.value, Quantity):
+        return f"{s.name} {_quantity(s.value)}"
+    raise ValueError(f"simulate option {s.name!r} has a value the language cannot write: "
+                     f"{s.value!r}")
+
+
+def _recording(r: ast.Recording) -> str:
+    parts = [r.mode]
+    if r.holding is not None:
+        parts.append(f"holding {_quantity(r.holding)}")
+    if r.noise is not None:
+        parts.append(f"noise {_quantity(r.noise)}")
+    return f"record {r.cell}: " + ", ".join(parts)
+
+
+def _stimulus(item) -> str:
+    if isinstance(item, ast.Pulse):
+        return (f"pulse {_quantity(item.amplitude)} for {_quantity(item.duration)} "
+                f"at {_quantity(item.at)}")
+    if isinstance(item, ast.Train):
+        return (f"train {item.count} pulses of {_quantity(item.amplitude)} "
+                f"for {_quantity(item.duration)} at {_quantity(item.rate)} "
+                f"from {_quantity(item.start)}")
+    if isinstance(item, ast.SpikeTimes):
+        return "spikes at " + ", ".join(_quantity(t) for t in item.times)
+    raise ValueError(f"unknown stimulus {item!r}")
+
+
+def _measure_item(item: ast.MeasureItem) -> str:
+    line = item.collector
+    if item.source is not None:
+        line += f" to {item.source}"
+    for opt in item.options:
+        line += f", {opt.name} {_quantity(opt.value)}"
+    return line

@@ -1,0 +1,1022 @@
+"""Protocol text -> checked Protocol AST: a lark LALR parse, then a lowering pass over the tree.
+
+The lowering pass checks units, dimensions, counts, required statements and cell names.
+Every user mistake becomes a :class:`~protolang.language.errors.ProtocolError` whose
+diagnostics name ``file:line:col``; lark's own exceptions never leave this module.
+Syntax errors stop at the first one (the parser cannot go on sensibly), lowering
+errors are collected and raised together.
+"""
+
+from __future__ import annotations
+
+import importlib.resources
+import re
+import threading
+from dataclasses import replace
+from functools import lru_cache
+from pathlib import Path
+from typing import Iterator, NamedTuple
+
+from lark import Lark, Token, Transformer, v_args
+from lark.exceptions import (LarkError, UnexpectedCharacters, UnexpectedInput, UnexpectedToken,
+                             VisitError)
+from lark.indenter import Indenter
+from lark.lexer import PatternStr
+
+from . import ast
+from .errors import Collector, Diagnostic, ProtocolError, Span, remember_source, suggest
+from .units import DIMENSIONS, UNITS, Quantity, check_unit, expect
+
+__all__ = ["parse", "parse_file"]
+
+
+# --- the lark parser ----------------------------------------------------------------------
+class _IndentSlip(LarkError):
+    """A line dedents to a column that no enclosing block uses."""
+
+    def __init__(self, line: int, column: int, levels: list[int]) -> None:
+        super().__init__(f"dedent to column {column}")
+        self.line, self.column, self.levels = line, column, levels
+
+
+class _GluedKeyword(LarkError):
+    """A keyword the lexer matched as the start of a longer word ('stimulates', 'seed7')."""
+
+    def __init__(self, keyword: Token, rest: Token) -> None:
+        super().__init__(f"{keyword}{rest}")
+        self.keyword, self.rest = keyword, rest
+
+
+_WORD_CHAR = re.compile(r"[A-Za-z0-9_]")
+
+
+class _Indentation(Indenter):
+    NL_type = "_NL"
+    OPEN_PAREN_types: list[str] = []
+    CLOSE_PAREN_types: list[str] = []
+    INDENT_type = "_INDENT"
+    DEDENT_type = "_DEDENT"
+    tab_len = 8  # only matters for pure-tab files; mixing tabs and spaces is rejected up front
+
+    def process(self, stream):
+        return super().process(self._separated(stream))
+
+    @staticmethod
+    def _separated(stream: Iterator[Token]) -> Iterator[Token]:
+        # In a state that accepts only keywords the lexer has no NAME pattern to compete
+        # with, so 'stimulates' would lex as 'stimulate' + 's'. Words must stand apart.
+        previous = None
+        for tok in stream:
+            if (previous is not None and previous.type == str(previous).upper()
+                    and previous.type not in _VALUE_TOKENS and tok.start_pos == previous.end_pos
+                    and _WORD_CHAR.match(str(tok))):
+                raise _GluedKeyword(previous, tok)
+            yield tok
+            previous = tok
+
+    def handle_NL(self, token: Token) -> Iterator[Token]:
+        # lark's version raises a DedentError without a position; ours keeps the line.
+        yield token
+        indent_str = token.rsplit("\n", 1)[1]
+        indent = indent_str.count(" ") + indent_str.count("\t") * self.tab_len
+        if indent > self.indent_level[-1]:
+            self.indent_level.append(indent)
+            yield Token.new_borrow_pos(self.INDENT_type, indent_str, token)
+            return
+        open_levels = list(self.indent_level)
+        while indent < self.indent_level[-1]:
+            self.indent_level.pop()
+            yield Token.new_borrow_pos(self.DEDENT_type, indent_str, token)
+        if indent != self.indent_level[-1]:
+            raise _IndentSlip(token.end_line, token.end_column, open_levels)
+
+
+_LAYOUT_TOKENS = frozenset({"_NL", "_INDENT", "_DEDENT"})
+_VALUE_TOKENS = frozenset({"NAME", "UNIT", "NUMBER", "STRING"})
+
+
+def _counts_for_position(child) -> bool:
+    # Spans end at the last visible token, not at the line break or dedent after it.
+    return not (isinstance(child, Token) and child.type in _LAYOUT_TOKENS)
+
+
+# The cached parser's indentation post-lexer keeps per-parse state.
+_PARSE_LOCK = threading.Lock()
+
+
+@lru_cache(maxsize=1)
+def _parser() -> Lark:
+    grammar = (importlib.resources.files("protolang") / "grammar" / "protolang.lark")
+    return Lark(grammar.read_text(encoding="utf-8"), parser="lalr", lexer="contextual",
+                postlex=_Indentation(), propagate_positions=_counts_for_position,
+                maybe_placeholders=True)
+
+
+@lru_cache(maxsize=1)
+def _keywords() -> dict[str, str]:
+    """Terminal name -> literal text for every keyword and punctuation mark of the grammar."""
+    return {t.name: t.pattern.value for t in _parser().terminals
+            if isinstance(t.pattern, PatternStr)}
+
+
+# --- entry points ---------------------------------------------------------------------------
+def parse(text: str, file: str = "<string>") -> ast.Protocol:
+    """Parse protocol text into a checked AST.
+
+    Args:
+        text: The protocol source.
+        file: Name used in spans and diagnostics (the path, for a file on disk).
+
+    Returns:
+        The :class:`~protolang.language.ast.Protocol`, every node carrying its span.
+
+    Raises:
+        ProtocolError: On any syntax error (the first one) or lowering error (all of them).
+    """
+    remember_source(file, text)
+    collector = Collector()
+    _check_layout(text, file, collector)
+    collector.raise_if_any()
+    source = text if text.endswith("\n") else text + "\n"
+    try:
+        with _PARSE_LOCK:
+            tree = _parser().parse(source)
+    except UnexpectedInput as exc:
+        raise ProtocolError([_syntax_diagnostic(exc, text, file)]) from None
+    except _IndentSlip as exc:
+        raise ProtocolError([_dedent_diagnostic(exc, text, file)]) from None
+    except _GluedKeyword as exc:
+        raise ProtocolError([_glued_diagnostic(exc, file)]) from None
+    lowering = _Lowering(file, collector)
+    try:
+        protocol = lowering.transform(tree)
+    except VisitError as exc:
+        # Our own bugs keep their traceback; a user error must not show lark's frames.
+        if isinstance(exc.orig_exc, ProtocolError):
+            raise exc.orig_exc.with_traceback(None) from None
+        raise exc.orig_exc from None
+    collector.diagnostics.sort(key=_position)
+    collector.raise_if_any()
+    assert isinstance(protocol, ast.Protocol), "internal error: lowering returned no protocol"
+    return protocol
+
+
+def parse_file(path: str | Path) -> ast.Protocol:
+    """Read and parse a ``.protocol`` file.
+
+    Args:
+        path: Path of the file; diagnostics name it as given.
+
+    Returns:
+        The checked :class:`~protolang.language.ast.Protocol` (``file`` set to ``path``).
+
+    Raises:
+        ProtocolError: If the file cannot be read or does not parse and check.
+    """
+    name = str(path)
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise ProtocolError([Diagnostic(f"cannot read protocol file {name!r}: {reason}", None,
+                                        expected="a readable UTF-8 text file")]) from None
+    return parse(text, name)
+
+
+def _position(diag: Diagnostic) -> tuple[int, int]:
+    return (diag.span.line, diag.span.column) if diag.span else (0, 0)
+
+
+# --- layout checks before lexing ------------------------------------------------------
+def _check_layout(text: str, file: str, collector: Collector) -> None:
+    """Reject indentation that the indentation post-lexer would misread."""
+    used = None  # the indentation character of the first indented line
+    seen_statement = False
+    for number, line in enumerate(text.split("\n"), start=1):
+        body = line.lstrip(" \t")
+        if not body.strip() or body.startswith("#"):
+            continue
+        lead = line[: len(line) - len(body)]
+        if not seen_statement and lead:
+            collector.fail("unexpected indentation before the first statement",
+                           Span(file, number, 1, number, len(lead) + 1),
+                           expected="a statement starting in column 1",
+                           hint="remove the leading whitespace")
+        seen_statement = True
+        if not lead:
+            continue
+        used = used or lead[0]
+        bad = next((i for i, ch in enumerate(lead) if ch != used), None)
+        if bad is not None:
+            kinds = "spaces" if used == " " else "tabs"
+            collector.fail("indentation mixes tabs and spaces",
+                           Span(file, number, bad + 1, number, len(lead) + 1),
+                           expected=f"indentation made of {kinds} only, as on the first "
+                                    "indented line",
+                           hint="indent with spaces only, 4 per level")
+
+
+# --- syntax errors -------------------------------------------------------------------------
+_TERMINAL_WORDS = {
+    "NUMBER": "a number",
+    "UNIT": "a unit",
+    "NAME": "a name",
+    "STRING": "a quoted string",
+    "_NL": "end of line",
+    "_INDENT": "an indented line",
+    "_DEDENT": "the end of the block",
+    "$END": "end of file",
+}
+
+
+def _expected_names(exc: UnexpectedInput) -> set[str]:
+    # The parser state knows what it can shift; the lexer's `allowed` set also lists
+    # terminals it always accepts (line breaks), which would make the message lie.
+    parser = getattr(exc, "interactive_parser", None)
+    if parser is not None:
+        return {n for n in parser.accepts() if not n.startswith("__")}
+    state = getattr(exc, "state", None)
+    try:
+        names = {n for n in state.parse_conf.states[state.position] if n.isupper()}
+    except (AttributeError, KeyError, TypeError):
+        names = set(getattr(exc, "expected", None) or getattr(exc, "allowed", None) or ())
+    return {n for n in names if not n.startswith("__")}
+
+
+def _describe_expected(names: set[str]) -> str:
+    keywords = _keywords()
+    order = list(_TERMINAL_WORDS)
+    words = [_TERMINAL_WORDS[n] for n in sorted((n for n in names if n in _TERMINAL_WORDS),
+                                                 key=order.index)]
+    words += sorted(f"'{keywords[n]}'" for n in names if n in keywords)
+    words += sorted(n.lower() for n in names if n not in keywords and n not in _TERMINAL_WORDS)
+    if not words:
+        return "nothing more on this line"
+    if len(words) == 1:
+        return words[0]
+    return ", ".join(words[:-1]) + " or " + words[-1]
+
+
+def _describe_token(tok: Token) -> str:
+    kind = tok.type
+    if kind == "_NL":
+        return "end of line"
+    if kind == "$END":
+        return "end of file"
+    if kind == "_INDENT":
+        return "indentation"
+    if kind == "_DEDENT":
+        return "end of an indented block"
+    if kind == "NUMBER":
+        return f"number {str(tok)!r}"
+    if kind == "STRING":
+        return f"string {str(tok)}"
+    if kind in ("NAME", "UNIT"):
+        return f"word {str(tok)!r}"
+    return repr(str(tok))
+
+
+def _lines(text: str) -> list[str]:
+    return text.split("\n")
+
+
+def _clamp(text: str, line: int, column: int) -> tuple[int, int]:
+    """Keep a location on an existing line so the diagnostic can quote it."""
+    lines = _lines(text.rstrip("\n")) or [""]
+    if line > len(lines):
+        line = len(lines)
+        column = len(lines[-1].rstrip()) + 1
+    return max(line, 1), max(column, 1)
+
+
+def _syntax_diagnostic(exc: UnexpectedInput, text: str, file: str) -> Diagnostic:
+    if isinstance(exc, UnexpectedCharacters):
+        return _bad_character(exc, text, file)
+    if isinstance(exc, UnexpectedToken):
+        return _bad_token(exc, text, file)
+    line, column = _clamp(text, exc.line, exc.column)
+    return Diagnostic("unexpected end of file", Span(file, line, column, line, column + 1),
+                      expected=_describe_expected(_expected_names(exc)))
+
+
+def _missing_quotes(before: str, rest: str, span: Span, got: str) -> Diagnostic:
+    """The title or the circuit path written without double quotes."""
+    keyword = before.split()[-1] if before else ""
+    what = "the circuit path" if keyword == "circuit" else "the title"
+    if rest:
+        words = re.split(r"\s+seed\s+", rest.strip("'"), maxsplit=1)
+        fix = f'{keyword} "{words[0]}"' + (f" seed {words[1]}" if len(words) > 1 else "")
+        hint = f"put {what} in double quotes: {fix}"
+    else:
+        hint = f'give {what} in double quotes, e.g. {keyword} "..."'
+    return Diagnostic(f"expected {what} in double quotes, got {got}", span,
+                      expected="a quoted string", hint=hint)
+
+
+def _bad_character(exc: UnexpectedCharacters, text: str, file: str) -> Diagnostic:
+    line, column = exc.line, exc.column
+    source = _lines(text)[line - 1]
+    names = _expected_names(exc)
+    if exc.char == '"':
+        return Diagnostic("unterminated string",
+                          Span(file, line, column, line, len(source.rstrip()) + 1),
+                          expected="a closing '\"' on the same line",
+                          hint="a quoted string must end on the line where it starts")
+    span = Span(file, line, column, line, column + 1)
+    if "STRING" in names:
+        rest = source[column - 1:].split("#", 1)[0].strip()
+        return _missing_quotes(source[: column - 1].rstrip(), rest, span,
+                               f"character {exc.char!r}")
+    hint = None
+    if exc.char in "\u00b5\u03bc":
+        hint = "write the micro prefix as 'u': us, um, uM, uV"
+    elif exc.char == "=" and "IS" in names:
+        hint = "select a cell with 'is': 'pre is pyramidal_deep'"
+    return Diagnostic(f"unexpected character {exc.char!r}", span,
+                      expected=_describe_expected(names), hint=hint)
+
+
+def _bad_token(exc: UnexpectedToken, text: str, file: str) -> Diagnostic:
+    tok = exc.token
+    names = _expected_names(exc)
+    lines = _lines(text)
+    if tok.type in ("_INDENT", "_DEDENT"):
+        # A layout token borrows the line break's start; the slip is where the next line begins.
+        line, column = tok.end_line, tok.end_column
+    elif tok.type == "$END":
+        line, column = len(lines) + 1, 1
+    else:
+        line, column = tok.line, tok.column
+    line, column = _clamp(text, line, column)
+    source = lines[line - 1]
+    before = source[: column - 1].rstrip()
+    rest = source[column - 1:].split("#", 1)[0].strip()
+    visible = tok.type not in _LAYOUT_TOKENS and tok.type != "$END"
+    span = Span(file, line, column, line, column + (max(len(str(tok)), 1) if visible else 1))
+    unexpected = _describe_token(tok)
+
+    if "COLON" in names and tok.type in ("_NL", "NAME", "UNIT"):
+        last = before.split()[-1] if before else ""
+        return Diagnostic(f"missing ':' after {last!r}", span, expected="':'",
+                          hint=f"write {before + ':'!r}: a block heading, and the cell of a "
+                               "'record' line, end with a colon")
+    if "STRING" in names and tok.type != "STRING":
+        if rest:
+            span = Span(file, line, column, line, column + len(rest))
+        return _missing_quotes(before, rest, span, unexpected)
+    if tok.type == "_INDENT":
+        return Diagnostic("unexpected indentation", span, expected=_describe_expected(names),
+                          hint="only the items of a block (the lines after a heading ending "
+                               "in ':') are indented")
+    if "_INDENT" in names:
+        heading = _heading_above(lines, line)
+        if heading is not None:
+            number, start, end = heading
+            span = Span(file, number, start, number, end)
+            shown = lines[number - 1][start - 1: end - 1]
+            message = f"the block {shown!r} has no items"
+        else:
+            message = "expected an indented block"
+        return Diagnostic(message, span,
+                          expected="the items of the block on the following lines, indented",
+                          hint="indent each item of the block, e.g. by 4 spaces")
+    hint = None
+    if tok.type in ("NAME", "UNIT"):
+        keywords = _keywords()
+        literal = [keywords[n] for n in names if n in keywords and keywords[n].isalpha()]
+        hint = suggest(str(tok), literal)
+        if hint is None and "COMMA" in names:
+            hint = "separate the items of one line with commas"
+    elif tok.type == "COLON":
+        hint = ("remove the ':'; only block headings (bath:, cells:, stimulate CELL:, "
+                "measure CELL:) and the cell of a 'record' line take a colon")
+    return Diagnostic(f"unexpected {unexpected}", span, expected=_describe_expected(names),
+                      hint=hint)
+
+
+def _glued_diagnostic(exc: _GluedKeyword, file: str) -> Diagnostic:
+    keyword, rest = str(exc.keyword), str(exc.rest)
+    word = keyword + rest
+    line, column = exc.keyword.line, exc.keyword.column
+    # A short alphabetic tail is a misspelt keyword ('stimulates'); a longer one, a lost space.
+    fix = keyword if rest.isalpha() and len(rest) <= 2 else f"{keyword} {rest}"
+    return Diagnostic(f"unexpected word {word!r}",
+                      Span(file, line, column, line, column + len(word)),
+                      expected=f"the keyword '{keyword}' as a word of its own",
+                      hint=f"did you mean {fix!r}?")
+
+
+def _heading_above(lines: list[str], line: int) -> tuple[int, int, int] | None:
+    """Line, start and end column of the nearest block heading at or above ``line``."""
+    for number in range(min(line, len(lines)), 0, -1):
+        code = lines[number - 1].split("#", 1)[0].rstrip()
+        if code.endswith(":"):
+            start = len(code) - len(code.lstrip()) + 1
+            return number, start, len(code) + 1
+        if code.strip() and number < line:
+            return None
+    return None
+
+
+def _dedent_diagnostic(exc: _IndentSlip, text: str, file: str) -> Diagnostic:
+    columns = " or ".join(str(level + 1) for level in exc.levels)
+    line, column = _clamp(text, exc.line, exc.column)
+    return Diagnostic("indentation does not match any enclosing block",
+                      Span(file, line, column, line, column + 1),
+                      expected=f"a line starting at column {columns}",
+                      hint="line up the item with the other items of its block")
+
+
+# --- lowering: parse tree -> AST with checks ---------------------------------------------
+class _Title(NamedTuple):
+    text: str
+    span: Span
+
+
+class _Circuit(NamedTuple):
+    path: str
+    seed: int
+    span: Span
+    path_span: Span
+
+
+class _Count(NamedTuple):
+    text: str
+    unit: str
+    span: Span
+
+
+class _Repeat(NamedTuple):
+    count: int
+    span: Span
+
+
+class _Bath(NamedTuple):
+    items: tuple
+    span: Span
+
+
+class _Simulate(NamedTuple):
+    settings: tuple
+    span: Span
+
+
+class _Mode(NamedTuple):
+    text: str
+    span: Span
+
+
+class _Constraint(NamedTuple):
+    node: object  # ast.Within | ast.ReceivingFrom
+    name_span: Span
+
+
+class _Pick(NamedTuple):
+    node: ast.CellPick
+    name_span: Span
+    constraints: tuple
+
+
+class _Reference(NamedTuple):
+    """A cell name used outside ``cells:``, checked once every selected name is known."""
+    name: str
+    span: Span
+    where: str
+
+
+_BATH_SETTINGS = ("calcium", "magnesium")
+_SETTINGS = {"isolated": None, "deterministic": None, "timestep": "time", "sampling": "frequency"}
+_RECORD_MODES = ("current clamp", "off")
+_RECORD_OPTIONS = ("holding", "noise")
+# Option name -> (dimension, smallest allowed value, whether the smallest is allowed).
+_MEASURE_OPTIONS = {
+    "window": ("time", 0.0, False),
+    "baseline": ("time", 0.0, False),
+    "threshold": ("voltage", 0.0, True),
+    "noise_factor": ("number", 0.0, False),
+}
+# Statement -> (what it gives, an example of it).
+_REQUIRED = {
+    "protocol": ("the title of the experiment", 'a line like: protocol "deep pyramid pair"'),
+    "circuit": ("the circuit file and its seed", 'a line like: circuit "slab.circuit.yaml" seed 1'),
+    "cells": ("the block selecting the recorded cells",
+              "a block like: cells:  followed by indented lines such as 'pre is pyramidal_deep'"),
+    "sweeps": ("the number of sweeps and their interval", "a line like: sweeps 30 every 10 s"),
+}
+
+
+def _unquote(tok: Token) -> str:
+    return re.sub(r"\\(.)", r"\1", str(tok)[1:-1])
+
+
+def _number(value: float) -> str:
+    return f"{value:g}"
+
+
+@v_args(meta=True)
+class _Lowering(Transformer):
+    """Turns the lark parse tree into AST nodes; collects every lowering error."""
+
+    def __init__(self, file: str, collector: Collector) -> None:
+        super().__init__(visit_tokens=False)
+        self.file = file
+        self.c = collector
+        self.references: list[_Reference] = []
+
+    # --- helpers ---------------------------------------------------------------------
+    def _span(self, meta) -> Span:
+        return Span(self.file, meta.line, meta.column, meta.end_line, meta.end_column)
+
+    def _tspan(self, tok: Token) -> Span:
+        return Span(self.file, tok.line, tok.column, tok.end_line, tok.end_column)
+
+    def _quantity(self, q: Quantity | None, dimension: str, what: str, *,
+                  minimum: float | None = None, inclusive: bool = True) -> float | None:
+        """SI value of ``q`` if its unit is known and has ``dimension`` (and is in range)."""
+        if q is None:
+            return None
+        if not self._known_unit(q, (dimension,)):
+            return None
+        try:
+            value = expect(q, dimension, what)
+        except ProtocolError as exc:
+            self.c.diagnostics.extend(exc.diagnostics)
+            return None
+        if minimum is not None and (value < minimum or (value == minimum and not inclusive)):
+            bound = "at least" if inclusive else "greater than"
+            shown = "0" if minimum == 0 else _number(minimum)
+            self.c.fail(f"{what} must be {bound} {shown}, got {q}", q.span,
+                        expected=f"{DIMENSIONS[dimension]}, {bound} {shown}")
+            return None
+        return value
+
+    def _known_unit(self, q: Quantity, dimensions: tuple[str, ...]) -> bool:
+        """True if ``q``'s unit is in the table; otherwise record why, with the likeliest fix."""
+        try:
+            check_unit(q.unit, q.span)
+            return True
+        except ProtocolError as exc:
+            diag = exc.diagnostics[0]
+        fitting = [u for u, (dim, _) in UNITS.items() if dim in dimensions]
+        # Case slips ('mv', 'khz') are the common ones; difflib alone would offer 'm' for 'mv'.
+        same = [u for u in UNITS if u.lower() == q.unit.lower()]
+        same.sort(key=lambda u: u not in fitting)
+        if same:
+            hint = "did you mean " + " or ".join(repr(u) for u in same) + "?"
+        else:
+            hint = suggest(q.unit, fitting) or suggest(q.unit, UNITS)
+        wanted = " or ".join(DIMENSIONS[d] for d in dimensions)
+        expected = (f"{wanted}, in " + ", ".join(fitting)) if fitting else wanted
+        self.c.diagnostics.append(replace(diag, expected=expected, hint=hint))
+        return False
+
+    def _count(self, count: _Count, what: str, *, minimum: int = 1) -> int | None:
+        """The integer of a count slot, or None after recording why it is not one."""
+        kind = "a positive whole number" if minimum >= 1 else "a whole number, 0 or more"
+        if count.unit:
+            self.c.fail(f"{what} is a plain count, got '{count.text} {count.unit}'", count.span,
+                        expected=kind, hint=f"drop the unit: {count.text}")
+            return None
+        if not re.fullmatch(r"[-+]?\d+", count.text):
+            value = float(count.text)
+            if value.is_integer() and value >= minimum:
+                hint = f"write it as plain digits: {int(value)}"
+            elif value >= minimum:
+                low = max(int(value), minimum)
+                hint = f"counts are whole numbers, e.g. {low} or {low + 1}"
+            else:
+                hint = f"use {minimum} or more"
+            self.c.fail(f"{what} must be a whole number, got {count.text}", count.span,
+                        expected=kind, hint=hint)
+            return None
+        value = int(count.text)
+        if value < minimum:
+            self.c.fail(f"{what} must be at least {minimum}, got {count.text}", count.span,
+                        expected=kind, hint=f"use {minimum} or more")
+            return None
+        return value
+
+    def _once(self, seen: dict, key, span: Span, what: str, hint: str | None = None) -> bool:
+        """True the first time ``key`` is seen; a later one is an error at its own span."""
+        if key in seen:
+            self.c.fail(f"duplicate {what}", span, expected=f"one {what}",
+                        hint=hint or f"the first one is at line {seen[key].line}")
+            return False
+        seen[key] = span
+        return True
+
+    # --- numbers -----------------------------------------------------------------------
+    def quantity(self, meta, children) -> Quantity:
+        number, unit = children
+        return Quantity(float(number), str(unit) if unit is not None else "", self._span(meta))
+
+    def count(self, meta, children) -> _Count:
+        number, unit = children
+        return _Count(str(number), str(unit) if unit is not None else "", self._span(meta))
+
+    # --- head statements -----------------------------------------------------------------
+    def title(self, meta, children) -> _Title:
+        return _Title(_unquote(children[0]), self._span(meta))
+
+    def circuit(self, meta, children) -> _Circuit:
+        path_tok, seed_count = children
+        path = _unquote(path_tok)
+        if not path.strip():
+            self.c.fail("empty circuit path", self._tspan(path_tok),
+                        expected="the path of a circuit file, relative to the protocol file",
+                        hint='e.g. circuit "slab.circuit.yaml"')
+        seed = 1
+        if seed_count is not None:
+            seed = self._count(seed_count, "the seed", minimum=0)
+        return _Circuit(path, seed if seed is not None else 1, self._span(meta),
+                        self._tspan(path_tok))
+
+    # --- bath ------------------------------------------------------------------------------
+    def bath_item(self, meta, children):
+        name_tok, word_tok, q = children
+        name, span = str(name_tok), self._span(meta)
+        if name in _BATH_SETTINGS:
+            if word_tok is not None:
+                self.c.fail(f"unexpected word {str(word_tok)!r} after {name!r}",
+                            self._tspan(word_tok),
+                            expected=DIMENSIONS["concentration"], hint=f"e.g. '{name} 2.0 mM'")
+                return None
+            if q is None:
+                self.c.fail(f"{name} needs a value", self._tspan(name_tok),
+                            expected=DIMENSIONS["concentration"], hint=f"e.g. '{name} 2.0 mM'")
+                return None
+            ok = self._quantity(q, "concentration", name, minimum=0.0)
+            return ast.BathSetting(name=name, value=q, span=span) if ok is not None else None
+        if name == "block":
+            if word_tok is None:
+                self.c.fail("'block' needs a receptor name", self._tspan(name_tok),
+                            expected="a receptor type of the circuit, e.g. AMPA, NMDA, GABA_A",
+                            hint="e.g. 'block NMDA' or 'block GABA_A 60 %'")
+                return None
+            if q is not None:
+                fraction = self._quantity(q, "percent", "a block fraction", minimum=0.0)
+                if fraction is None:
+                    return None
+                if fraction > 1.0:
+                    self.c.fail(f"a block fraction cannot exceed 100 %, got {q}", q.span,
+                                expected="a percentage from 0 to 100",
+                                hint=f"for a complete block write 'block {word_tok}' "
+                                     "without a number")
+                    return None
+            return ast.ReceptorBlock(receptor=str(word_tok), fraction=q, span=span)
+        choices = (*_BATH_SETTINGS, "block")
+        self.c.fail(f"unknown bath item {name!r}", self._tspan(name_tok),
+                    expected="calcium Q, magnesium Q or block RECEPTOR [Q %]",
+                    hint=suggest(name, choices))
+        return None
+
+    def bath(self, meta, children) -> _Bath:
+        seen: dict = {}
+        items = []
+        for item in children:
+            if item is None:
+                continue
+            if isinstance(item, ast.BathSetting):
+                fresh = self._once(seen, item.name, item.span, f"'{item.name}' setting")
+            else:
+                fresh = self._once(seen, ("block", item.receptor), item.span,
+                                   f"block of {item.receptor}")
+            if fresh:
+                items.append(item)
+        return _Bath(tuple(items), self._span(meta))
+
+    # --- cells -------------------------------------------------------------------------------
+    def within(self, meta, children) -> _Constraint:
+        q, other = children
+        self._quantity(q, "length", "the 'within' distance", minimum=0.0, inclusive=False)
+        node = ast.Within(distance=q, of=str(other), span=self._span(meta))
+        return _Constraint(node, self._tspan(other))
+
+    def receiving_from(self, meta, children) -> _Constraint:
+        (source,) = children
+        node = ast.ReceivingFrom(source=str(source), span=self._span(meta))
+        return _Constraint(node, self._tspan(source))
+
+    def cell_pick(self, meta, children) -> _Pick:
+        name, cell_class, *constraints = children
+        pick = ast.CellPick(name=str(name), cell_class=str(cell_class),
+                            constraints=tuple(c.node for c in constraints),
+                            span=self._span(meta), class_span=self._tspan(cell_class))
+        return _Pick(pick, self._tspan(name), tuple(constraints))
+
+    def repeat(self, meta, children) -> _Repeat:
+        n = self._count(children[0], "the repeat count")
+        return _Repeat(n if n is not None else 1, self._span(meta))
+
+    def cells(self, meta, children) -> ast.Cells:
+        picks: list[_Pick] = []
+        repeat: _Repeat | None = None
+        names: dict[str, Span] = {}
+        for line in children:
+            if isinstance(line, _Repeat):
+                if repeat is not None:
+                    self.c.fail("duplicate 'repeat' line", line.span, expected="one 'repeat N'",
+                                hint=f"the first one is at line {repeat.span.line}")
+                    continue
+                repeat = line
+                continue
+            if line.node.name in names:
+                self.c.fail(f"cell name {line.node.name!r} is already selected", line.name_span,
+                            expected="a new name for each selected cell",
+                            hint=f"the first {line.node.name!r} is at line "
+                                 f"{names[line.node.name].line}; choose another name")
+                continue
+            names[line.node.name] = line.name_span
+            picks.append(line)
+        order = [p.node.name for p in picks]
+        for index, pick in enumerate(picks):
+            earlier = order[:index]
+            wanted = "a cell selected on an earlier line" + (": " + ", ".join(earlier)
+                                                             if earlier else "")
+            for constraint in pick.constraints:
+                node = constraint.node
+                ref = node.of if isinstance(node, ast.Within) else node.source
+                if ref in earlier:
+                    continue
+                if ref == pick.node.name:
+                    self.c.fail(f"cell {ref!r} cannot be constrained by itself",
+                                constraint.name_span, expected=wanted,
+                                hint="name another cell, selected above this line")
+                elif ref in order:
+                    self.c.fail(f"cell {ref!r} is selected later (line {names[ref].line})",
+                                constraint.name_span, expected=wanted,
+                                hint=f"move the line selecting {ref!r} above this one")
+                else:
+                    self.c.fail(f"unknown cell {ref!r}", constraint.name_span, expected=wanted,
+                                hint=suggest(ref, order))
+        span = self._span(meta)
+        if not picks:
+            self.c.fail("'cells:' selects no cell", span,
+                        expected="a line 'NAME is CLASS'", hint="e.g. 'pre is pyramidal_deep'")
+        return ast.Cells(picks=tuple(p.node for p in picks),
+                         repeat=repeat.count if repeat else 1,
+                         repeat_span=repeat.span if repeat else None, span=span)
+
+    # --- timing ------------------------------------------------------------------------------
+    def sweeps(self, meta, children) -> ast.Sweeps | None:
+        count, interval, length = children
+        n = self._count(count, "the sweep count")
+        self._quantity(interval, "time", "the sweep interval", minimum=0.0, inclusive=False)
+        self._quantity(length, "time", "the sweep length", minimum=0.0, inclusive=False)
+        return ast.Sweeps(count=n if n is not None else 1, interval=interval, length=length,
+                          span=self._span(meta))
+
+    def setting(self, meta, children) -> ast.Setting | None:
+        name_tok, q = children
+        name, span = str(name_tok), self._span(meta)
+        if name not in _SETTINGS:
+            self.c.fail(f"unknown simulate option {name!r}", self._tspan(name_tok),
+                        expected="one of " + ", ".join(_SETTINGS), hint=suggest(name, _SETTINGS))
+            return None
+        dimension = _SETTINGS[name]
+        if dimension is None and q is not None:
+            self.c.fail(f"'{name}' takes no value, got {q}", q.span,
+                        expected="a comma or end of line",
+                        hint=f"write just '{name}'")
+            return None
+        if dimension is not None:
+            if q is None:
+                self.c.fail(f"'{name}' needs {DIMENSIONS[dimension]}", self._tspan(name_tok),
+                            expected=DIMENSIONS[dimension],
+                            hint="e.g. 'timestep 0.025 ms'" if name == "timestep"
+                            else "e.g. 'sampling 10 kHz'")
+                return None
+            if self._quantity(q, dimension, f"the {name}", minimum=0.0, inclusive=False) is None:
+                return None
+        return ast.Setting(name=name, value=q, span=span)
+
+    def simulate(self, meta, children) -> _Simulate:
+        seen: dict = {}
+        settings = tuple(s for s in children
+                         if s is not None and self._once(seen, s.name, s.span,
+                                                         f"simulate option '{s.name}'"))
+        return _Simulate(settings, self._span(meta))
+
+    # --- recording ---------------------------------------------------------------------------
+    def record_mode(self, meta, children) -> _Mode:
+        return _Mode(" ".join(str(w) for w in children), self._span(meta))
+
+    def option(self, meta, children) -> ast.Option:
+        name, q = children
+        return ast.Option(name=str(name), value=q, span=self._span(meta))
+
+    def recording(self, meta, children) -> ast.Recording | None:
+        cell, mode, *options = children
+        self.references.append(_Reference(str(cell), self._tspan(cell), "record"))
+        ok = True
+        if mode.text not in _RECORD_MODES:
+            self.c.fail(f"unknown recording mode {mode.text!r}", mode.span,
+                        expected="'current clamp' or 'off'",
+                        hint=suggest(mode.text, _RECORD_MODES)
+                        or "v1 records in current clamp; 'off' simulates the cell unrecorded")
+            ok = False
+        values: dict[str, Quantity] = {}
+        seen: dict = {}
+        for opt in options:
+            if opt.name not in _RECORD_OPTIONS:
+                self.c.fail(f"unknown record option {opt.name!r}", opt.span,
+                            expected="holding Q or noise Q",
+                            hint=suggest(opt.name, _RECORD_OPTIONS))
+                ok = False
+                continue
+            if not self._once(seen, opt.name, opt.span, f"record option '{opt.name}'"):
+                ok = False
+                continue
+            values[opt.name] = opt.value
+        holding = values.get("holding")
+        if holding is not None:
+            ok = self._holding(holding) and ok
+        noise = values.get("noise")
+        if noise is not None:
+            noise_sd = self._quantity(noise, "voltage", "the recording noise", minimum=0.0)
+            ok = noise_sd is not None and ok
+        if not ok:
+            return None
+        return ast.Recording(cell=str(cell), mode=mode.text, holding=holding, noise=noise,
+                             span=self._span(meta))
+
+    def _holding(self, q: Quantity) -> bool:
+        if not self._known_unit(q, ("current", "voltage")):
+            return False
+        if q.dimension in ("current", "voltage"):
+            return True
+        got = "a plain number" if not q.unit else f"{q.unit!r} ({q.dimension})"
+        self.c.fail(f"holding needs a current or a voltage, got {got}", q.span,
+                    expected=f"{DIMENSIONS['current']} or {DIMENSIONS['voltage']}",
+                    hint=f"e.g. 'holding {_number(q.value)} pA' (injected current) or "
+                         "'holding -70 mV' (held potential)")
+        return False
+
+    # --- stimuli -----------------------------------------------------------------------------
+    def pulse(self, meta, children) -> ast.Pulse | None:
+        amplitude, width, at = children
+        ok = self._quantity(amplitude, "current", "the pulse amplitude") is not None
+        ok = self._quantity(width, "time", "the pulse width", minimum=0.0, inclusive=False) \
+            is not None and ok
+        ok = self._quantity(at, "time", "the pulse start", minimum=0.0) is not None and ok
+        if not ok:
+            return None
+        return ast.Pulse(amplitude=amplitude, duration=width, at=at, span=self._span(meta))
+
+    def train(self, meta, children) -> ast.Train | None:
+        count, amplitude, width, rate, start = children
+        n = self._count(count, "the number of pulses")
+        ok = self._quantity(amplitude, "current", "the pulse amplitude") is not None
+        width_s = self._quantity(width, "time", "the pulse width", minimum=0.0, inclusive=False)
+        rate_hz = self._quantity(rate, "frequency", "the train frequency", minimum=0.0,
+                                 inclusive=False)
+        ok = self._quantity(start, "time", "the train start", minimum=0.0) is not None and ok
+        if width_s is not None and rate_hz is not None and width_s * rate_hz >= 1.0:
+            top = 1.0 / width_s
+            self.c.fail(f"frequency too high for the pulse width: {rate} with {width} pulses "
+                        "leaves no gap between pulses", rate.span,
+                        expected=f"a frequency below {top:g} Hz for {width} pulses",
+                        hint=f"lower the frequency below {top:g} Hz or shorten the pulses")
+            ok = False
+        if n is None or width_s is None or rate_hz is None or not ok:
+            return None
+        return ast.Train(count=n, amplitude=amplitude, duration=width, rate=rate, start=start,
+                         span=self._span(meta))
+
+    def spike_times(self, meta, children) -> ast.SpikeTimes | None:
+        ok = True
+        previous: tuple[float, Quantity] | None = None
+        for q in children:
+            t = self._quantity(q, "time", "a spike time", minimum=0.0)
+            if t is None:
+                ok = False
+                continue
+            if previous is not None and t <= previous[0]:
+                self.c.fail(f"spike times must increase: {q} comes after {previous[1]}", q.span,
+                            expected=f"a time later than {previous[1]}",
+                            hint="list the spike times in increasing order, each once")
+                ok = False
+            previous = (t, q)
+        if not ok:
+            return None
+        return ast.SpikeTimes(times=tuple(children), span=self._span(meta))
+
+    def stimulate(self, meta, children) -> ast.Stimulate:
+        cell, *items = children
+        self.references.append(_Reference(str(cell), self._tspan(cell), "stimulate"))
+        items = [i for i in items if i is not None]
+        spikes = [i for i in items if isinstance(i, ast.SpikeTimes)]
+        currents = [i for i in items if not isinstance(i, ast.SpikeTimes)]
+        for extra in spikes[1:]:
+            self.c.fail("a second 'spikes at' line for the same cell", extra.span,
+                        expected="all spike times of a cell on one line",
+                        hint=f"merge it into the line {spikes[0].span.line}")
+        if spikes and currents:
+            self.c.fail(f"cell {str(cell)!r} gets both spike times and current pulses",
+                        currents[0].span,
+                        expected="either 'spikes at ...' or current pulses and trains",
+                        hint="explicit spike times replace the cell's membrane, so current "
+                             "pulses would have no effect; drop one of them")
+        return ast.Stimulate(cell=str(cell), items=tuple(items), span=self._span(meta))
+
+    # --- result collectors ---------------------------------------------------------------
+    def measure_item(self, meta, children) -> ast.MeasureItem:
+        collector, source, *options = children
+        seen: dict = {}
+        kept = []
+        for opt in options:
+            if not self._once(seen, opt.name, opt.span, f"option '{opt.name}'"):
+                continue
+            rule = _MEASURE_OPTIONS.get(opt.name)
+            # Unknown option names are left to the plan stage, which knows each collector's options.
+            if rule is not None:
+                dimension, minimum, inclusive = rule
+                self._quantity(opt.value, dimension, f"the {opt.name} option", minimum=minimum,
+                               inclusive=inclusive)
+            kept.append(opt)
+        source_span = None
+        if source is not None:
+            source_span = self._tspan(source)
+            self.references.append(_Reference(str(source), source_span, f"{collector} to"))
+        return ast.MeasureItem(collector=str(collector),
+                               source=str(source) if source is not None else None,
+                               options=tuple(kept), span=self._span(meta), source_span=source_span)
+
+    def measure(self, meta, children) -> ast.Measure:
+        cell, *items = children
+        self.references.append(_Reference(str(cell), self._tspan(cell), "measure"))
+        return ast.Measure(cell=str(cell), items=tuple(items), span=self._span(meta))
+
+    # --- the whole file -------------------------------------------------------------------
+    def start(self, meta, children) -> ast.Protocol | None:
+        found: dict[str, object] = {}
+        seen: dict = {}
+        recordings, stimuli, measures = [], [], []
+        for statement in children:
+            kind, cell, span = self._statement_key(statement)
+            if statement is None or kind is None:
+                continue
+            key = (kind, cell)
+            what = f"'{kind}' statement" if cell is None else f"'{kind} {cell}' statement"
+            hint = None
+            if cell is not None and key in seen:
+                hint = (f"the first one is at line {seen[key].line}; put everything for "
+                        f"{cell!r} in one '{kind}' statement")
+            if not self._once(seen, key, span, what, hint):
+                continue
+            if kind == "record":
+                recordings.append(statement)
+            elif kind == "stimulate":
+                stimuli.append(statement)
+            elif kind == "measure":
+                measures.append(statement)
+            else:
+                found[kind] = statement
+        for kind, (meaning, example) in _REQUIRED.items():
+            if kind not in found:
+                self.c.fail(f"missing '{kind}' statement ({meaning})",
+                            Span(self.file, 1, 1, 1, 2), expected=example,
+                            hint=f"every protocol needs exactly one '{kind}' statement")
+        cells = found.get("cells")
+        if cells is not None:
+            selected = [p.name for p in cells.picks]
+            for ref in self.references:
+                if ref.name not in selected:
+                    self.c.fail(f"unknown cell {ref.name!r} in '{ref.where}'", ref.span,
+                                expected=("a cell selected in 'cells:': " + ", ".join(selected))
+                                if selected else "a cell selected in 'cells:'",
+                                hint=suggest(ref.name, selected))
+        if any(kind not in found for kind in _REQUIRED):
+            return None
+        title, circuit = found["protocol"], found["circuit"]
+        bath = found.get("bath")
+        simulate = found.get("simulate")
+        return ast.Protocol(title=title.text, circuit=circuit.path, seed=circuit.seed,
+                            sweeps=found["sweeps"], cells=cells,
+                            bath=bath.items if bath else (),
+                            settings=simulate.settings if simulate else (),
+                            recordings=tuple(recordings), stimuli=tuple(stimuli),
+                            measures=tuple(measures), file=self.file, span=title.span,
+                            circuit_span=circuit.path_span)
+
+    @staticmethod
+    def _statement_key(statement) -> tuple[str | None, str | None, Span | None]:
+        if isinstance(statement, _Title):
+            return "protocol", None, statement.span
+        if isinstance(statement, _Circuit):
+            return "circuit", None, statement.span
+        if isinstance(statement, _Bath):
+            return "bath", None, statement.span
+        if isinstance(statement, ast.Cells):
+            return "cells", None, statement.span
+        if isinstance(statement, ast.Sweeps):
+            return "sweeps", None, statement.span
+        if isinstance(statement, _Simulate):
+            return "simulate", None, statement.span
+        if isinstance(statement, ast.Recording):
+            return "record", statement.cell, statement.span
+        if isinstance(statement, ast.Stimulate):
+            return "stimulate", statement.cell, statement.span
+        if isinstance(statement, ast.Measure):
+            return "measure", statement.cell, statement.span
+        return None, None, None
