@@ -1,0 +1,355 @@
+"""Run folder writer: a plan, its recordings, tables and provenance in; CSV/Parquet tables, PNG figures and JSON files out.
+
+Layout of one run folder::
+
+    plan.json                  the resolved plan (Plan.to_json)
+    provenance.json            versions, seeds, hashes, wall time (as given by the caller)
+    tables/<table>.csv         every table, also as tables/<table>.parquet
+    figures/<pathway>_sweeps.png   example connection: sweeps in grey, their average in black,
+                                   presynaptic events marked; mean response across connections
+    figures/<pathway>_summary.png  amplitude per event normalised to the first (mean +- SD over
+                                   connections) and CV against mean first amplitude
+    recordings.npz             raw traces and spikes (write_recordings_npz)
+
+Every file is written under a temporary name in its own folder and moved into place
+with ``os.replace``, so a reader never sees half a file. matplotlib is imported inside
+the figure functions and draws on an Agg canvas (no pyplot, no global backend switch).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import math
+import os
+import re
+import tempfile
+from pathlib import Path
+from typing import TYPE_CHECKING, Callable
+
+import numpy as np
+
+if TYPE_CHECKING:   # keep pandas, matplotlib and the engine out of import time
+    import pandas as pd
+
+    from ..engine.recordings import Recordings
+    from ..plan.model import Plan
+
+MS = 1e3
+MV = 1e3
+_TMP_PREFIX = ".partial-"
+
+
+def atomic_write(path: str | os.PathLike, write: Callable[[str], None]) -> Path:
+    """Write ``path`` through ``write(temp_path)`` and move the result into place.
+
+    Args:
+        path: final file path; its folder must exist.
+        write: callable that writes the whole file to the temporary path it is given.
+
+    Returns:
+        ``path`` as a Path.
+
+    Raises:
+        Whatever ``write`` raises; the temporary file is removed first.
+    """
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=_TMP_PREFIX + path.name + ".", suffix=".tmp")
+    os.close(fd)
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return path
+
+
+def _write_text(path: Path, text: str) -> Path:
+    def write(tmp: str) -> None:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            if not text.endswith("\n"):
+                fh.write("\n")
+    return atomic_write(path, write)
+
+
+def _json_default(obj):
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, os.PathLike):
+        return os.fspath(obj)
+    if isinstance(obj, (_dt.datetime, _dt.date)):
+        return obj.isoformat()
+    raise TypeError(f"provenance value of type {type(obj).__name__} cannot be written as JSON")
+
+
+def write_run(out_dir: str | os.PathLike, plan: "Plan", recordings: "Recordings",
+              tables: dict[str, "pd.DataFrame"], provenance: dict) -> dict[str, Path]:
+    """Write one run folder (layout in the module docstring).
+
+    Args:
+        out_dir: the run folder; created if missing, existing files are replaced.
+        plan: the resolved plan.
+        recordings: the run's recordings (for the figures).
+        tables: ``{name: DataFrame}`` as returned by ``protolang.measure.collect.collect``.
+        provenance: JSON-able facts about the run (numpy values and paths are converted).
+
+    Returns:
+        ``{path relative to out_dir (with '/'): absolute Path}`` of every file written.
+
+    Raises:
+        TypeError: a provenance value cannot be written as JSON.
+        OSError: the folder cannot be written.
+    """
+    # Serialise first: a provenance that cannot be written must not leave half a run folder.
+    prov_text = json.dumps(provenance, indent=1, default=_json_default)
+    out = Path(out_dir)
+    table_dir = out / "tables"
+    table_dir.mkdir(parents=True, exist_ok=True)
+    written: dict[str, Path] = {}
+    for name, df in tables.items():
+        written[f"tables/{name}.csv"] = atomic_write(
+            table_dir / f"{name}.csv", lambda tmp, df=df: df.to_csv(tmp, index=False))
+        written[f"tables/{name}.parquet"] = atomic_write(
+            table_dir / f"{name}.parquet", lambda tmp, df=df: df.to_parquet(tmp, index=False, engine="pyarrow"))
+    for rel, path in write_figures(out / "figures", plan, recordings, tables).items():
+        written[f"figures/{rel}"] = path
+    written["plan.json"] = _write_text(out / "plan.json", plan.to_json())
+    written["provenance.json"] = _write_text(out / "provenance.json", prov_text)
+    return {k: p.resolve() for k, p in written.items()}
+
+
+def slug(name: str) -> str:
+    """File-name form of a pathway name: ``pyramidal_deep->basket_fast`` -> ``pyramidal_deep_to_basket_fast``."""
+    text = name.replace("->", "_to_")
+    text = re.sub(r"[^A-Za-z0-9_.-]+", "_", text).strip("_.")
+    return text or "pathway"
+
+
+def _new_figure(width: float, height: float):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), dpi=110, layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _save_figure(fig, path: Path) -> Path:
+    return atomic_write(path, lambda tmp: fig.savefig(tmp, format="png"))
+
+
+def write_figures(fig_dir: str | os.PathLike, plan: "Plan", recordings: "Recordings",
+                  tables: dict[str, "pd.DataFrame"]) -> dict[str, Path]:
+    """Draw the per-pathway figures (needs the ``connections`` and ``responses`` tables).
+
+    Args:
+        fig_dir: folder for the PNG files (created).
+        plan: the plan (nominal event times).
+        recordings: traces for the example and mean responses.
+        tables: the collected tables.
+
+    Returns:
+        ``{file name: Path}``; empty when there is no ``connections`` table.
+    """
+    if "connections" not in tables or "responses" not in tables or tables["connections"].empty:
+        return {}
+    fig_dir = Path(fig_dir)
+    fig_dir.mkdir(parents=True, exist_ok=True)
+    connections, responses = tables["connections"], tables["responses"]
+    written: dict[str, Path] = {}
+    for pathway, group in connections.groupby("pathway", sort=False):
+        name = slug(str(pathway))
+        resp = responses[responses["pathway"] == pathway]
+        fig = _sweeps_figure(plan, recordings, group, resp, str(pathway))
+        if fig is not None:
+            written[f"{name}_sweeps.png"] = _save_figure(fig, fig_dir / f"{name}_sweeps.png")
+        fig = _summary_figure(group, resp, str(pathway))
+        written[f"{name}_summary.png"] = _save_figure(fig, fig_dir / f"{name}_summary.png")
+    return written
+
+
+def _example_row(group: "pd.DataFrame"):
+    """The connected pair whose mean first amplitude is nearest the pathway's median."""
+    linked = group[group["connected"].astype(bool)]
+    pool = linked if len(linked) else group
+    amps = pool["amplitude_mean_mV"].to_numpy(dtype=float)
+    if not np.isfinite(amps).any():
+        return pool.iloc[0]
+    med = float(np.nanmedian(amps))
+    return pool.iloc[int(np.nanargmin(np.abs(amps - med)))]
+
+
+def _sweeps_figure(plan, recordings, group, resp, pathway):
+    ex = _example_row(group)
+    pre, post = str(ex["pre"]), str(ex["post"])
+    if post not in recordings.traces:
+        return None
+    traces = np.asarray(recordings.traces[post], dtype=float) * MV
+    t = np.asarray(recordings.time, dtype=float) * MS
+    try:
+        nominal = np.array(sorted(e.time for e in plan.role(pre).events), dtype=float) * MS
+    except KeyError:
+        nominal = np.array([])
+    windows = resp["window_ms"].to_numpy(dtype=float)
+    tail = float(np.nanmax(windows)) if np.isfinite(windows).any() else 40.0
+    if nominal.size:
+        lo, hi = max(t[0], nominal[0] - 20.0), min(t[-1], nominal[-1] + tail + 10.0)
+    else:
+        lo, hi = t[0], t[-1]
+    view = (t >= lo) & (t <= hi)
+    pre_first = (t >= (nominal[0] - 10.0 if nominal.size else lo)) & (t < (nominal[0] if nominal.size else lo + 10.0))
+    if not pre_first.any():
+        pre_first = view
+
+    fig = _new_figure(11.0, 4.2)
+    ax_ex, ax_mean = fig.subplots(1, 2, sharex=True)
+    sweeps = traces[int(ex["repeat"])]
+    for sweep in sweeps:
+        ax_ex.plot(t[view], sweep[view], color="0.78", lw=0.5)
+    ax_ex.plot(t[view], sweeps.mean(axis=0)[view], color="black", lw=1.3, label=f"average of {len(sweeps)} sweeps")
+    ax_ex.set_title(f"{pathway}\nexample pair {ex['pre_id']} -> {ex['post_id']} (repeat {ex['repeat']})", fontsize=9)
+    ax_ex.set_ylabel(f"{post} membrane potential (mV)")
+
+    same = group[(group["pre"] == pre) & (group["post"] == post) & group["connected"].astype(bool)]
+    averages = []
+    for r in same["repeat"].astype(int):
+        avg = traces[r].mean(axis=0)
+        averages.append(avg - avg[pre_first].mean())
+    if averages:
+        stack = np.array(averages)
+        mean = stack.mean(axis=0)
+        ax_mean.plot(t[view], mean[view], color="black", lw=1.3)
+        if len(averages) > 1:
+            sd = stack.std(axis=0, ddof=1)
+            ax_mean.fill_between(t[view], (mean - sd)[view], (mean + sd)[view], color="0.8", lw=0,
+                                 label="± SD")
+    ax_mean.set_title(f"mean of sweep averages over connected pairs (n = {len(averages)})", fontsize=9)
+    ax_mean.set_ylabel("change from baseline (mV)")
+    for ax in (ax_ex, ax_mean):
+        for tn in nominal:
+            ax.axvline(tn, color="tab:red", lw=0.6, alpha=0.5)
+        ax.set_xlabel("time in sweep (ms)")
+        ax.spines[["top", "right"]].set_visible(False)
+    ax_ex.legend(loc="upper right", fontsize=8, frameon=False)
+    return fig
+
+
+def _summary_figure(group, resp, pathway):
+    linked = group[group["connected"].astype(bool)]
+    events = resp[["event", "probe"]].drop_duplicates().sort_values("event")
+    train = [int(e) for e, p in zip(events["event"], events["probe"]) if not bool(p)]
+    labels, means, sds, ns = [], [], [], []
+    for e, p in zip(events["event"], events["probe"]):
+        e = int(e)
+        if bool(p):
+            col, label = "recovery_ratio", f"{e}\n(probe)"
+        elif train and e == train[0]:
+            col, label = None, str(e)
+        elif len(train) > 1 and e == train[1]:
+            col, label = "ppr", str(e)
+        else:
+            col, label = f"ratio_{e}_{train[0]}", str(e)
+        if col is None:
+            vals = np.ones(int(np.isfinite(linked["amplitude_mean_mV"].to_numpy(dtype=float)).sum()))
+        elif col in linked:
+            vals = linked[col].to_numpy(dtype=float)
+            vals = vals[np.isfinite(vals)]
+        else:
+            vals = np.array([])
+        labels.append(label)
+        means.append(float(vals.mean()) if vals.size else math.nan)
+        sds.append(float(vals.std(ddof=1)) if vals.size > 1 else 0.0)
+        ns.append(vals.size)
+
+    fig = _new_figure(11.0, 4.2)
+    ax_bar, ax_cv = fig.subplots(1, 2, width_ratios=[2, 1])
+    x = np.arange(len(labels))
+    ax_bar.bar(x, means, yerr=sds, color="0.6", edgecolor="black", capsize=3)
+    ax_bar.axhline(1.0, color="black", lw=0.6, ls=":")
+    ax_bar.set_xticks(x, labels)
+    ax_bar.set_xlabel("presynaptic event")
+    ax_bar.set_ylabel("amplitude / amplitude of response 1\n(mean ± SD over connections)")
+    ax_bar.set_title(f"{pathway}: normalised amplitude, n = {len(linked)} connections", fontsize=9)
+
+    amp = linked["amplitude_mean_mV"].to_numpy(dtype=float)
+    cv = linked["cv"].to_numpy(dtype=float)
+    ok = np.isfinite(amp) & np.isfinite(cv)
+    ax_cv.scatter(amp[ok], cv[ok], s=14, color="black")
+    ax_cv.set_xlabel("mean amplitude of response 1 (mV)")
+    ax_cv.set_ylabel("CV of response 1")
+    ax_cv.set_title(f"CV against amplitude, n = {int(ok.sum())}", fontsize=9)
+    for ax in (ax_bar, ax_cv):
+        ax.spines[["top", "right"]].set_visible(False)
+    return fig
+
+
+def write_recordings_npz(out_dir: str | os.PathLike, recordings: "Recordings") -> Path:
+    """Save the raw recordings as ``out_dir/recordings.npz`` (compressed).
+
+    Keys: ``time`` (s), ``sample_dt`` (s), ``trace__<role>`` ((n_repeat, n_sweeps,
+    n_samples) V), ``spike_times__<role>`` (all spike times, s, repeat-major then sweep
+    order) with ``spike_counts__<role>`` ((n_repeat, n_sweeps) spikes per sweep),
+    ``release__<synapse>`` and ``meta_json`` (the engine facts as JSON text).
+
+    Args:
+        out_dir: the run folder (created if missing).
+        recordings: the recordings.
+
+    Returns:
+        The path written.
+    """
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    arrays: dict[str, np.ndarray] = {
+        "time": np.asarray(recordings.time, dtype=float),
+        "sample_dt": np.asarray(recordings.sample_dt, dtype=float),
+        "meta_json": np.asarray(json.dumps(recordings.meta, default=_json_default)),
+    }
+    for role, tr in recordings.traces.items():
+        arrays[f"trace__{role}"] = np.asarray(tr, dtype=float)
+    for role, per_repeat in recordings.spikes.items():
+        counts = np.array([[len(s) for s in sweeps] for sweeps in per_repeat], dtype=np.int64)
+        flat = [np.asarray(s, dtype=float).ravel() for sweeps in per_repeat for s in sweeps]
+        arrays[f"spike_counts__{role}"] = counts.reshape(len(per_repeat), -1)
+        arrays[f"spike_times__{role}"] = np.concatenate(flat) if flat else np.zeros(0)
+    for name, rel in recordings.release.items():
+        arrays[f"release__{name}"] = np.asarray(rel)
+
+    def write(tmp: str) -> None:
+        with open(tmp, "wb") as fh:
+            np.savez_compressed(fh, **arrays)
+    return atomic_write(out / "recordings.npz", write)
+
+
+def read_recordings_npz(path: str | os.PathLike) -> "Recordings":
+    """Load a file written by :func:`write_recordings_npz` back into :class:`Recordings`.
+
+    Args:
+        path: the ``recordings.npz`` file.
+
+    Returns:
+        The recordings (spike lists rebuilt per repeat and sweep).
+    """
+    from ..engine.recordings import Recordings
+
+    with np.load(path, allow_pickle=False) as data:
+        traces = {k[len("trace__"):]: data[k] for k in data.files if k.startswith("trace__")}
+        spikes = {}
+        for key in data.files:
+            if not key.startswith("spike_counts__"):
+                continue
+            role = key[len("spike_counts__"):]
+            counts = data[key]
+            flat = data[f"spike_times__{role}"]
+            bounds = np.concatenate([[0], np.cumsum(counts.ravel())])
+            pieces = [flat[bounds[i]:bounds[i + 1]] for i in range(counts.size)]
+            n_sweeps = counts.shape[1]
+            spikes[role] = [pieces[r * n_sweeps:(r + 1) * n_sweeps] for r in range(counts.shape[0])]
+        release = {k[len("release__"):]: data[k] for k in data.files if k.startswith("release__")}
+        return Recordings(sample_dt=float(data["sample_dt"]), time=data["time"], traces=traces,
+                          spikes=spikes, release=release, meta=json.loads(str(data["meta_json"])))
