@@ -10,7 +10,8 @@ import pytest
 
 import protolang
 from protolang.language.errors import ProtocolError
-from protolang.plan.resolve import adex_bias, hill, peak_factor, release_factor
+from protolang.engine.models import peak_factor
+from protolang.plan.resolve import adex_bias, hill, release_factor
 
 DEMO = Path(__file__).resolve().parents[1] / "demo"
 

@@ -7,13 +7,12 @@ measures, layout. Every number handed to the engine is SI. No Brian2 here.
 from __future__ import annotations
 
 import hashlib
-import math
-
 import numpy as np
 
 from ..language import ast
 from ..language.errors import Collector, ProtocolError, error
 from ..language.units import display, expect
+from ..engine.models import peak_factor
 from ..measure.registry import COLLECTORS
 from .check import find_pathway, run_checks
 from .model import (CurrentPulse, MeasurePlan, Plan, ReceptorPlan, RolePlan, StimulusEvent,
@@ -35,14 +34,6 @@ def release_factor(calcium: float, release) -> float:
     """Factor applied to U at ``calcium`` relative to the circuit's reference calcium."""
     return hill(calcium, release.half_activation, release.hill) / hill(
         release.calcium_reference, release.half_activation, release.hill)
-
-
-def peak_factor(rise: float, decay: float) -> float:
-    """Jump of x (1/s) per unit peak conductance for dg/dt = -g/decay + x, dx/dt = -x/rise."""
-    if math.isclose(rise, decay):
-        return math.e / rise
-    tp = rise * decay / (decay - rise) * math.log(decay / rise)
-    return 1.0 / (rise * decay / (decay - rise) * (math.exp(-tp / decay) - math.exp(-tp / rise)))
 
 
 def adex_bias(params: dict[str, np.ndarray], v: float) -> np.ndarray:
