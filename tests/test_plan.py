@@ -119,8 +119,8 @@ def test_layout_sequential_when_sweeps_interact(tmp_path):
 
 @pytest.mark.parametrize("kw,line,col,needle", [
     (dict(pre_class="pyramidal_dep"), 8, 12, "did you mean 'pyramidal_deep'"),
-    (dict(dist=1), 12, 5, "only 0 of 5 requested groups"),
-    (dict(interval=0.1), 14, 15, "shorter than one sweep"),
+    (dict(dist=1), 10, 5, "only 0 of 5 requested groups"),
+    (dict(interval=0.1), 12, 16, "shorter than one sweep"),
 ])
 def test_plan_errors_point_at_the_line(tmp_path, kw, line, col, needle):
     exp = make(tmp_path, **kw)
@@ -145,7 +145,7 @@ def test_unknown_receptor_block(tmp_path):
     (tmp_path / "r.protocol").write_text(src)
     with pytest.raises(ProtocolError) as info:
         protolang.load(tmp_path / "r.protocol").check()
-    assert "r.protocol:5:11: error: unknown receptor 'NMAD'" in str(info.value)
+    assert "r.protocol:6:5: error: unknown receptor 'NMAD'" in str(info.value)
     assert "did you mean 'NMDA'" in str(info.value)
 
 
