@@ -31,7 +31,7 @@ import protolang  # noqa: E402
 
 def protolang_run(plan, target):
     from protolang.engine import run_plan
-    from protolang.measure import collect
+    from protolang.measure.collect import collect
 
     t0 = time.perf_counter()
     rec = run_plan(plan, target=target)

@@ -116,7 +116,7 @@ class Experiment:
         recordings = run_plan(plan, target=target, progress=say)
         timings["simulate_s"] = time.perf_counter() - t1
         say("collecting tables")
-        from .measure import collect
+        from .measure.collect import collect
 
         t2 = time.perf_counter()
         tables = collect(plan, recordings)
@@ -136,6 +136,9 @@ def _write_atomically(out: Path, plan, recordings, tables, prov, force: bool):
     out = out.resolve()
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(tmp, 0o777 & ~mask)  # mkdtemp makes 0700; a run folder is meant to be shared
     try:
         paths = write_run(tmp, plan, recordings, tables, prov)
         write_recordings_npz(tmp, recordings)

@@ -437,7 +437,8 @@ def test_write_run_outputs(collected, tmp_path):
     on_disk = {p.resolve() for p in out.rglob("*") if p.is_file()}
     assert on_disk == set(paths.values()) | {npz.resolve()}   # nothing else: no temp files left
     back = read_recordings_npz(npz)
-    np.testing.assert_array_equal(back.traces["post"], rec.traces["post"])
+    # traces are stored in single precision: 1e-7 relative, far below recording noise
+    np.testing.assert_allclose(back.traces["post"], rec.traces["post"], rtol=1e-6, atol=0)
     for r in range(N_REPEAT):
         for s in range(N_SWEEPS):
             np.testing.assert_array_equal(back.spikes["pre"][r][s], rec.spikes["pre"][r][s])

@@ -1,11 +1,5 @@
-"""Result collectors: recordings (plain arrays) -> tables; ``collect`` is loaded on first use."""
+"""Result collectors: recordings (plain arrays) -> tables.
 
-__all__ = ["collect"]
-
-
-def __getattr__(name):
-    if name == "collect":
-        from .collect import collect
-
-        return collect
-    raise AttributeError(name)
+``protolang.measure.collect.collect(plan, recordings)`` builds the tables; ``registry`` holds the
+collector names and options the front end checks (and imports nothing heavy).
+"""
