@@ -231,12 +231,16 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
 
     # synapses between every ordered pair of selected cells the circuit connects
     synapses: list[SynapsePlan] = []
+    notes_extra: list[str] = []
     for pre in selection.names:
         for post in selection.names:
             if pre == post:
                 continue
             pw = find_pathway(circuit, picks[pre].cell_class, picks[post].cell_class)
             if pw is None:
+                continue
+            if roles_stim[post][1] is not None:
+                notes_extra.append(f"{pre} -> {post} left out: {post} fires at explicit times and has no membrane")
                 continue
             pre_ids, post_ids = selection.ids[pre], selection.ids[post]
             connected = instance.connected(pre_ids, post_ids)
@@ -268,7 +272,7 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
 
     layout, reason = _layout(settings, interval, length, roles, receptors, synapses)
     text_hash = hashlib.sha256((source_text or "").encode()).hexdigest() if source_text else ""
-    notes = [f"{d.span}: warning: {d.message}" for d in out.warnings]
+    notes = [f"{d.span}: warning: {d.message}" for d in out.warnings] + notes_extra
     return Plan(
         title=protocol.title, protocol_file=protocol.file, protocol_hash=text_hash,
         circuit_file=circuit.path, circuit_hash=circuit.sha256, seed=protocol.seed,
