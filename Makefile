@@ -16,7 +16,7 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(VENV)/bin/protolang run demo/pyramid_pair_train.protocol --out runs/demo
+	$(VENV)/bin/protolang run demo/pyramid_pair_train.protocol --out runs/demo --force
 
 test: $(STAMP)
 	$(PY) -m pytest -q tests
