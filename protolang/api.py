@@ -25,8 +25,22 @@ __version__ = "0.1.0"
 
 
 @dataclass
+class PointRun:
+    """One point of a scan (or the single run of an unscanned protocol)."""
+
+    values: dict          # scan name -> Quantity; empty without scans
+    plan: object
+    recordings: object
+    tables: dict
+
+
+@dataclass
 class Result:
-    """What one run produced: the plan, raw recordings, tables and (if written) the run folder."""
+    """What a run produced: plan, raw recordings, tables and (if written) the run folder.
+
+    For a scanned protocol, ``tables`` are combined over points (``scan_*`` columns), ``points``
+    holds each point's plan, recordings and tables, and ``plan``/``recordings`` are the first point's.
+    """
 
     plan: object
     recordings: object
@@ -34,6 +48,7 @@ class Result:
     provenance: dict
     out_dir: Path | None = None
     paths: dict = field(default_factory=dict)
+    points: list = field(default_factory=list)
 
 
 class Experiment:
@@ -66,21 +81,42 @@ class Experiment:
             self._circuit = load_circuit(str(path))
         return self._circuit
 
+    def points(self) -> list[tuple[dict, object]]:
+        """``[(scan values, protocol)]``: one entry per scan point, or one with no values."""
+        if not self.protocol.scans:
+            return [({}, self.protocol)]
+        return [(dict(pt.values), pt.protocol) for pt in self.protocol.points]
+
     def check(self) -> list:
-        """Check names, units and selections against the circuit; return warnings.
+        """Check names, units and selections against the circuit (every scan point); return warnings.
 
         Raises:
             ProtocolError: on any error.
         """
+        from .language.errors import Collector
         from .plan.check import run_checks
 
-        return run_checks(self.protocol, self.circuit).warnings
+        out, seen = Collector(), set()
+        for _, protocol in self.points():
+            try:
+                found = run_checks(protocol, self.circuit).diagnostics
+            except ProtocolError as exc:
+                found = exc.diagnostics
+            for d in found:
+                if (d.span, d.message) not in seen:
+                    seen.add((d.span, d.message))
+                    out.diagnostics.append(d)
+        out.raise_if_any()
+        return out.warnings
 
-    def plan(self):
-        """Resolve into a Plan (concrete cells, SI values, sweep layout)."""
+    def plan(self, point: int = 0):
+        """Resolve into a Plan (concrete cells, SI values, sweep layout); ``point`` picks a scan point."""
         from .plan.resolve import resolve
 
-        return resolve(self.protocol, self.circuit, source_text=self.text)
+        points = self.points()
+        if not 0 <= point < len(points):
+            raise IndexError(f"point {point} of {len(points)}")
+        return resolve(points[point][1], self.circuit, source_text=self.text)
 
     # -- back end ----------------------------------------------------------------
     def run(self, out: str | os.PathLike | None = None, *, target: str = "auto",
@@ -100,37 +136,56 @@ class Experiment:
         if out is not None and Path(out).exists() and not force:
             raise error(f"run folder {str(out)!r} already exists", None,
                         expected="a new folder name", hint="choose another --out or pass --force")
-        timings = {}
-        t0 = time.perf_counter()
-        say("planning")
-        plan = self.plan()
-        timings["plan_s"] = time.perf_counter() - t0
-        for note in plan.notes:
-            say(note)
-        say(f"layout: {plan.layout}: {plan.layout_reason}")
-        say(f"simulating {plan.n_repeat} repeats x {plan.n_sweeps} sweeps "
-            f"({plan.n_replicas} replicas, {plan.sweep_length * 1e3:g} ms each)")
         from .engine import run_plan
-
-        t1 = time.perf_counter()
-        recordings = run_plan(plan, target=target, progress=say)
-        timings["simulate_s"] = time.perf_counter() - t1
-        say("collecting tables")
         from .measure.collect import collect
 
-        t2 = time.perf_counter()
-        tables = collect(plan, recordings)
-        timings["collect_s"] = time.perf_counter() - t2
-        prov = provenance(self, plan, recordings, timings)
-        result = Result(plan=plan, recordings=recordings, tables=tables, provenance=prov)
+        timings = {"plan_s": 0.0, "simulate_s": 0.0, "collect_s": 0.0}
+        t0 = time.perf_counter()
+        points = self.points()
+        # resolve every point first: a bad point fails before any simulation
+        plans = []
+        for k, (values, protocol) in enumerate(points):
+            t = time.perf_counter()
+            plans.append(self.plan(k))
+            timings["plan_s"] += time.perf_counter() - t
+        for note in plans[0].notes:
+            say(note)
+        say(f"layout: {plans[0].layout}: {plans[0].layout_reason}")
+        runs: list[PointRun] = []
+        for k, ((values, _), plan) in enumerate(zip(points, plans)):
+            where = ""
+            if values:
+                where = f"point {k + 1}/{len(points)} (" + ", ".join(f"@{n} = {q}" for n, q in values.items()) + "): "
+            say(f"{where}simulating {plan.n_repeat} repeats x {plan.n_sweeps} sweeps "
+                f"({plan.n_replicas} replicas, {plan.sweep_length * 1e3:g} ms each)")
+            t1 = time.perf_counter()
+            recordings = run_plan(plan, target=target, progress=say)
+            timings["simulate_s"] += time.perf_counter() - t1
+            say(f"{where}collecting tables")
+            t2 = time.perf_counter()
+            tables = collect(plan, recordings)
+            timings["collect_s"] += time.perf_counter() - t2
+            runs.append(PointRun(values=values, plan=plan, recordings=recordings, tables=tables))
+        prov = provenance(self, plans[0], runs[0].recordings, timings)
+        if self.protocol.scans:
+            from .report.scan import combine
+
+            prov["scan_points"] = [{n: str(q) for n, q in r.values.items()} for r in runs]
+            prov["plan_sha256"] = [hashlib.sha256(r.plan.to_json().encode()).hexdigest() for r in runs]
+            tables = combine([(r.values, r.tables) for r in runs])
+        else:
+            tables = runs[0].tables
+        result = Result(plan=runs[0].plan, recordings=runs[0].recordings, tables=tables, provenance=prov,
+                        points=runs)
+        prov["wall_time_s"] = time.perf_counter() - t0   # up to writing the folder
         if out is not None:
             say("writing run folder")
-            result.out_dir, result.paths = _write_atomically(Path(out), plan, recordings, tables, prov, force)
-            prov["wall_time_s"] = time.perf_counter() - t0
+            result.out_dir, result.paths = _write_atomically(Path(out), result, force)
         return result
 
 
-def _write_atomically(out: Path, plan, recordings, tables, prov, force: bool):
+def _write_atomically(out: Path, result: Result, force: bool):
+    """Write the run folder under a temporary name and rename it into place when complete."""
     from .report.write import write_recordings_npz, write_run
 
     out = out.resolve()
@@ -140,15 +195,20 @@ def _write_atomically(out: Path, plan, recordings, tables, prov, force: bool):
     os.umask(mask)
     os.chmod(tmp, 0o777 & ~mask)  # mkdtemp makes 0700; a run folder is meant to be shared
     try:
-        paths = write_run(tmp, plan, recordings, tables, prov)
-        write_recordings_npz(tmp, recordings)
+        if len(result.points) > 1 or (result.points and result.points[0].values):
+            from .report.scan import write_scan
+
+            paths = write_scan(tmp, result.points, result.tables, result.provenance)
+        else:
+            paths = write_run(tmp, result.plan, result.recordings, result.tables, result.provenance)
+            paths["recordings.npz"] = write_recordings_npz(tmp, result.recordings)
         if out.exists() and force:
             shutil.rmtree(out)
         os.replace(tmp, out)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    fixed = {k: (out / Path(v).relative_to(tmp) if str(v).startswith(str(tmp)) else v) for k, v in paths.items()}
+    fixed = {k: out / k for k in paths}
     return out, fixed
 
 
@@ -208,7 +268,7 @@ def loads(text: str, file: str = "<string>") -> Experiment:
     return Experiment(parse(text, file), None if file == "<string>" else file, text)
 
 
-__all__ = ["Experiment", "Result", "load", "loads", "ProtocolError", "__version__"]
+__all__ = ["Experiment", "PointRun", "Result", "load", "loads", "ProtocolError", "__version__"]
 
 
 def _json_default(o):  # pragma: no cover - used by callers that dump provenance

@@ -26,7 +26,8 @@ def cmd_check(args) -> int:
             exp = load(path)
             warnings = exp.check()
             if args.resolve:
-                exp.plan()
+                for k in range(len(exp.points())):
+                    exp.plan(k)
         except ProtocolError as exc:
             _err(str(exc))
             status = 1
@@ -49,11 +50,16 @@ def cmd_parse(args) -> int:
 def cmd_plan(args) -> int:
     from .api import load
 
-    plan = load(args.file).plan()
+    exp = load(args.file)
+    plan = exp.plan(args.point - 1)
     if args.dump:
         print(plan.to_json())
         return 0
     print(f"protocol   {plan.title}")
+    points = exp.points()
+    if len(points) > 1 or points[0][0]:
+        shown = ", ".join(f"@{n} = {q}" for n, q in points[args.point - 1][0].items())
+        print(f"scan       {len(points)} points; showing point {args.point}: {shown}")
     print(f"circuit    {plan.circuit_file} (seed {plan.seed})")
     print(f"cells      " + ", ".join(f"{r.name}: {r.cell_class}" for r in plan.roles) + f"; {plan.n_repeat} repeats")
     for s in plan.synapses:
@@ -98,6 +104,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("plan", help="show the resolved plan (summary, or JSON with --dump)")
     p.add_argument("file")
     p.add_argument("--dump", action="store_true")
+    p.add_argument("--point", type=int, default=1, help="scan point to show (1-based)")
     p.set_defaults(func=cmd_plan)
     p = sub.add_parser("run", help="simulate a protocol and write its run folder")
     p.add_argument("file")

@@ -169,6 +169,35 @@ class Measure:
     span: Span | None = _span()
 
 
+# --- scans ----------------------------------------------------------------------------
+@node
+class ScanRef:
+    """``@amp`` in a quantity slot: the value of a scan, one per run point."""
+    name: str
+    span: Span | None = _span()
+
+
+@node
+class Scan:
+    """``scan @amp: 50 pA to 500 pA in 10 steps`` (form "range"), ``... by 50 pA`` ("step")
+    or ``1 mM, 1.5 mM, 2 mM`` ("list"). ``values`` are the points, in order."""
+    name: str
+    form: str
+    values: tuple[Quantity, ...]
+    start: Quantity | None = None
+    stop: Quantity | None = None
+    steps: int | None = None
+    step: Quantity | None = None
+    span: Span | None = _span()
+
+
+@node
+class ScanPoint:
+    """One point of the scan grid: the values taken and the protocol with them filled in."""
+    values: tuple  # ((name, Quantity), ...) in scan order
+    protocol: "Protocol"
+
+
 # --- the whole protocol ---------------------------------------------------------------
 @node
 class Protocol:
@@ -182,6 +211,8 @@ class Protocol:
     recordings: tuple[Recording, ...] = ()
     stimuli: tuple[Stimulate, ...] = ()
     measures: tuple[Measure, ...] = ()
+    scans: tuple[Scan, ...] = ()
+    points: tuple[ScanPoint, ...] = field(default=(), compare=False, repr=False)
     file: str = field(default="<string>", compare=False)
     span: Span | None = _span()
     circuit_span: Span | None = _span()

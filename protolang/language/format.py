@@ -31,6 +31,8 @@ def format_protocol(p: ast.Protocol) -> str:
     sections = [
         [f"protocol {_string(p.title)}", f"circuit {_string(p.circuit)} seed {p.seed}"],
     ]
+    if p.scans:
+        sections.append([_scan(x) for x in p.scans])
     if p.bath:
         sections.append(["bath:"] + [INDENT + _bath_item(item) for item in p.bath])
     sections.append(_cells(p.cells))
@@ -63,8 +65,20 @@ def _number(value: float) -> str:
     return repr(value)
 
 
-def _quantity(q: Quantity) -> str:
+def _quantity(q) -> str:
+    if isinstance(q, ast.ScanRef):
+        return f"@{q.name}"
     return f"{_number(q.value)} {q.unit}" if q.unit else _number(q.value)
+
+
+def _scan(x: ast.Scan) -> str:
+    if x.form == "range":
+        body = f"{_quantity(x.start)} to {_quantity(x.stop)} in {x.steps} steps"
+    elif x.form == "step":
+        body = f"{_quantity(x.start)} to {_quantity(x.stop)} by {_quantity(x.step)}"
+    else:
+        body = ", ".join(_quantity(q) for q in x.values)
+    return f"scan @{x.name}: {body}"
 
 
 def _bath_item(item) -> str:

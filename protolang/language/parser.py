@@ -10,6 +10,7 @@ errors are collected and raised together.
 from __future__ import annotations
 
 import importlib.resources
+import math
 import re
 import threading
 from dataclasses import replace
@@ -25,7 +26,7 @@ from lark.lexer import PatternStr
 
 from . import ast
 from .errors import Collector, Diagnostic, ProtocolError, Span, remember_source, suggest
-from .units import DIMENSIONS, UNITS, Quantity, check_unit, expect
+from .units import DIMENSIONS, UNITS, Quantity, check_unit, expect, to_si
 
 __all__ = ["parse", "parse_file"]
 
@@ -158,7 +159,40 @@ def parse(text: str, file: str = "<string>") -> ast.Protocol:
     collector.diagnostics.sort(key=_position)
     collector.raise_if_any()
     assert isinstance(protocol, ast.Protocol), "internal error: lowering returned no protocol"
+    if protocol.scans:
+        protocol = replace(protocol, points=_lower_points(tree, protocol, file))
     return protocol
+
+
+def _lower_points(tree, template: ast.Protocol, file: str) -> tuple[ast.ScanPoint, ...]:
+    """Lower the tree once per point of the scan grid; every point is checked in full."""
+    import itertools
+
+    points = []
+    errors: list = []
+    seen: set = set()
+    for combo in itertools.product(*(x.values for x in template.scans)):
+        values = {x.name: q for x, q in zip(template.scans, combo)}
+        collector = Collector()
+        lowering = _Lowering(file, collector, point=values)
+        try:
+            protocol = lowering.transform(tree)
+        except VisitError as exc:
+            if isinstance(exc.orig_exc, ProtocolError):
+                raise exc.orig_exc.with_traceback(None) from None
+            raise exc.orig_exc from None
+        where = ", ".join(f"@{k} = {q}" for k, q in values.items())
+        for d in collector.errors:
+            key = (d.span, d.message)
+            if key not in seen:
+                seen.add(key)
+                errors.append(replace(d, message=f"{d.message} (at scan point {where})"))
+        if not collector.errors:
+            points.append(ast.ScanPoint(values=tuple(values.items()), protocol=replace(protocol, scans=())))
+    if errors:
+        errors.sort(key=_position)
+        raise ProtocolError(errors)
+    return tuple(points)
 
 
 def parse_file(path: str | Path) -> ast.Protocol:
@@ -484,7 +518,11 @@ class _Reference(NamedTuple):
     where: str
 
 
-_BATH_SETTINGS = ("calcium", "magnesium")
+# Bath setting -> (dimension, example).
+_BATH_SETTINGS = {"calcium": ("concentration", "2.0 mM"), "magnesium": ("concentration", "1.0 mM"),
+                  "temperature": ("temperature", "34 degC")}
+# Bath temperatures a slice survives, in kelvin (0 to 45 degC).
+_TEMPERATURE_RANGE = (273.15, 318.15)
 _SETTINGS = {"isolated": None, "deterministic": None, "timestep": "time", "sampling": "frequency"}
 _RECORD_MODES = ("current clamp", "off")
 _RECORD_OPTIONS = ("holding", "noise")
@@ -505,6 +543,15 @@ _REQUIRED = {
 }
 
 
+_MAX_SCAN_VALUES = 1000
+_MAX_SCAN_POINTS = 10000
+
+
+def _tidy(value: float) -> float:
+    """Round away float noise from range arithmetic (0.30000000000000004 -> 0.3)."""
+    return float(f"{value:.12g}")
+
+
 def _unquote(tok: Token) -> str:
     return re.sub(r"\\(.)", r"\1", str(tok)[1:-1])
 
@@ -517,11 +564,16 @@ def _number(value: float) -> str:
 class _Lowering(Transformer):
     """Turns the lark parse tree into AST nodes; collects every lowering error."""
 
-    def __init__(self, file: str, collector: Collector) -> None:
+    def __init__(self, file: str, collector: Collector,
+                 point: dict[str, Quantity] | None = None) -> None:
         super().__init__(visit_tokens=False)
         self.file = file
         self.c = collector
         self.references: list[_Reference] = []
+        # None: lower the template (``@name`` stays a ScanRef); else the values of one point.
+        self.point = point
+        self.scan_uses: list[ast.ScanRef] = []
+        self.failed_scans: set[str] = set()  # scans with their own error: uses are not "unscanned"
 
     # --- helpers ---------------------------------------------------------------------
     def _span(self, meta) -> Span:
@@ -535,6 +587,8 @@ class _Lowering(Transformer):
         """SI value of ``q`` if its unit is known and has ``dimension`` (and is in range)."""
         if q is None:
             return None
+        if isinstance(q, ast.ScanRef):
+            return math.nan  # checked per point, with the point's value in this slot
         if not self._known_unit(q, (dimension,)):
             return None
         try:
@@ -606,9 +660,95 @@ class _Lowering(Transformer):
         return True
 
     # --- numbers -----------------------------------------------------------------------
-    def quantity(self, meta, children) -> Quantity:
+    def quantity(self, meta, children) -> Quantity | ast.ScanRef:
+        if len(children) == 1 or (isinstance(children[0], Token) and children[0].type == "VARIABLE"):
+            tok = children[0]
+            ref = ast.ScanRef(name=str(tok)[1:], span=self._tspan(tok))
+            self.scan_uses.append(ref)
+            if self.point is not None and ref.name in self.point:
+                value = self.point[ref.name]
+                # the point's value, placed where the user wrote @name
+                return Quantity(value.value, value.unit, ref.span)
+            return ref
         number, unit = children
         return Quantity(float(number), str(unit) if unit is not None else "", self._span(meta))
+
+    # --- scans -------------------------------------------------------------------------------
+    def _scan_values_ok(self, values, span: Span) -> bool:
+        ok = True
+        for q in values:
+            if isinstance(q, ast.ScanRef):
+                self.c.fail(f"a scan value cannot be another scan (@{q.name})", q.span,
+                            expected="a number with its unit", hint="write the values out")
+                ok = False
+            elif not self._known_unit(q, tuple(DIMENSIONS)):
+                ok = False
+        if ok:
+            dims = {q.dimension for q in values}
+            if len(dims) > 1:
+                self.c.fail("the values of one scan must share a dimension, got "
+                            + " and ".join(sorted(dims)), span,
+                            expected="values of one kind, e.g. all currents")
+                ok = False
+        return ok
+
+    def scan_range(self, meta, children):
+        start, stop, count = children
+        span = self._span(meta)
+        n = self._count(count, "the number of scan steps")
+        if not self._scan_values_ok((start, stop), span) or n is None:
+            return None
+        if n < 2:
+            self.c.fail(f"a scan range needs at least 2 steps, got {n}", count.span,
+                        expected="2 or more steps", hint="use a list for a single value: scan @x: 1 mM")
+            return None
+        if start.si == stop.si:
+            self.c.fail(f"a scan range from {start} to {stop} is empty", span,
+                        expected="two different ends", hint="use a list for a single value")
+            return None
+        unit = start.unit
+        lo, hi = start.si, stop.si
+        factor = to_si(1.0, unit) if unit else 1.0
+        values = tuple(Quantity(_tidy((lo + (hi - lo) * k / (n - 1)) / factor), unit, span) for k in range(n))
+        return ("range", values, dict(start=start, stop=stop, steps=n))
+
+    def scan_step(self, meta, children):
+        start, stop, step = children
+        span = self._span(meta)
+        if not self._scan_values_ok((start, stop, step), span):
+            return None
+        lo, hi, d = start.si, stop.si, step.si
+        if d == 0:
+            self.c.fail("a scan step of zero never reaches the end", step.span,
+                        expected=f"a non-zero step, e.g. {_number((stop.value - start.value) / 4 or 1)} {start.unit}",
+                        hint="give a step, or use 'in N steps'")
+            return None
+        if (hi - lo) * d < 0:
+            self.c.fail(f"a step of {step} goes away from {stop}", step.span,
+                        expected="a step with the sign of (end - start)", hint="flip the sign of the step")
+            return None
+        n = int(math.floor((hi - lo) / d + 1e-9)) + 1
+        if n > _MAX_SCAN_VALUES:
+            self.c.fail(f"this scan has {n} values, more than {_MAX_SCAN_VALUES}", span,
+                        expected=f"at most {_MAX_SCAN_VALUES} values", hint="use a larger step")
+            return None
+        unit = start.unit
+        factor = to_si(1.0, unit) if unit else 1.0
+        values = tuple(Quantity(_tidy((lo + d * k) / factor), unit, span) for k in range(n))
+        return ("step", values, dict(start=start, stop=stop, step=step))
+
+    def scan_list(self, meta, children):
+        if not self._scan_values_ok(children, self._span(meta)):
+            return None
+        return ("list", tuple(children), {})
+
+    def scan(self, meta, children) -> ast.Scan | None:
+        var, body = children
+        if body is None:
+            self.failed_scans.add(str(var)[1:])
+            return None
+        form, values, extra = body
+        return ast.Scan(name=str(var)[1:], form=form, values=values, span=self._span(meta), **extra)
 
     def count(self, meta, children) -> _Count:
         number, unit = children
@@ -636,16 +776,26 @@ class _Lowering(Transformer):
         name_tok, word_tok, q = children
         name, span = str(name_tok), self._span(meta)
         if name in _BATH_SETTINGS:
+            dimension, example = _BATH_SETTINGS[name]
             if word_tok is not None:
                 self.c.fail(f"unexpected word {str(word_tok)!r} after {name!r}",
                             self._tspan(word_tok),
-                            expected=DIMENSIONS["concentration"], hint=f"e.g. '{name} 2.0 mM'")
+                            expected=DIMENSIONS[dimension], hint=f"e.g. '{name} {example}'")
                 return None
             if q is None:
                 self.c.fail(f"{name} needs a value", self._tspan(name_tok),
-                            expected=DIMENSIONS["concentration"], hint=f"e.g. '{name} 2.0 mM'")
+                            expected=DIMENSIONS[dimension], hint=f"e.g. '{name} {example}'")
                 return None
-            ok = self._quantity(q, "concentration", name, minimum=0.0)
+            if dimension == "temperature":
+                ok = self._quantity(q, dimension, name)
+                low, high = _TEMPERATURE_RANGE
+                if ok is not None and not low <= ok <= high:
+                    self.c.fail(f"bath temperature {q} is outside 0 to 45 degC", q.span,
+                                expected="a bath temperature such as 22 degC (room) or 34 degC",
+                                hint="write the temperature in degC")
+                    return None
+            else:
+                ok = self._quantity(q, dimension, name, minimum=0.0)
             return ast.BathSetting(name=name, value=q, span=span) if ok is not None else None
         if name == "block":
             if word_tok is None:
@@ -666,7 +816,7 @@ class _Lowering(Transformer):
             return ast.ReceptorBlock(receptor=str(word_tok), fraction=q, span=span)
         choices = (*_BATH_SETTINGS, "block")
         self.c.fail(f"unknown bath item {name!r}", self._tspan(name_tok),
-                    expected="calcium Q, magnesium Q or block RECEPTOR [Q %]",
+                    expected="calcium Q, magnesium Q, temperature Q or block RECEPTOR [Q %]",
                     hint=suggest(name, choices))
         return None
 
@@ -841,6 +991,8 @@ class _Lowering(Transformer):
                              span=self._span(meta))
 
     def _holding(self, q: Quantity) -> bool:
+        if isinstance(q, ast.ScanRef):
+            return True
         if not self._known_unit(q, ("current", "voltage")):
             return False
         if q.dimension in ("current", "voltage"):
@@ -952,7 +1104,16 @@ class _Lowering(Transformer):
         found: dict[str, object] = {}
         seen: dict = {}
         recordings, stimuli, measures = [], [], []
+        scans: list[ast.Scan] = []
         for statement in children:
+            if isinstance(statement, ast.Scan):
+                if any(x.name == statement.name for x in scans):
+                    first = next(x for x in scans if x.name == statement.name)
+                    self.c.fail(f"duplicate scan @{statement.name}", statement.span,
+                                expected="one scan per name", hint=f"the first one is at line {first.span.line}")
+                else:
+                    scans.append(statement)
+                continue
             kind, cell, span = self._statement_key(statement)
             if statement is None or kind is None:
                 continue
@@ -986,6 +1147,25 @@ class _Lowering(Transformer):
                                 expected=("a cell selected in 'cells:': " + ", ".join(selected))
                                 if selected else "a cell selected in 'cells:'",
                                 hint=suggest(ref.name, selected))
+        names = [x.name for x in scans]
+        used = {ref.name for ref in self.scan_uses}
+        for ref in self.scan_uses:
+            if ref.name not in names and ref.name not in self.failed_scans:
+                self.c.fail(f"@{ref.name} is not scanned", ref.span,
+                            expected="a name defined by a 'scan @name: ...' line"
+                            + (": " + ", ".join("@" + n for n in names) if names else ""),
+                            hint=(lambda h: h.replace("'", "'@", 1) if h else
+                                  f"add a line such as 'scan @{ref.name}: 1, 2, 3' with units")(
+                                      suggest(ref.name, names)))
+        for x in scans:
+            if x.name not in used:
+                self.c.fail(f"scan @{x.name} is never used", x.span,
+                            expected=f"@{x.name} in a quantity slot, e.g. 'pulse @{x.name} for 2 ms at 100 ms'",
+                            hint="use it or delete the scan line")
+        n_points = math.prod(len(x.values) for x in scans) if scans else 1
+        if n_points > _MAX_SCAN_POINTS:
+            self.c.fail(f"the scans make {n_points} run points, more than {_MAX_SCAN_POINTS}", scans[0].span,
+                        expected=f"at most {_MAX_SCAN_POINTS} points in all", hint="scan fewer values")
         if any(kind not in found for kind in _REQUIRED):
             return None
         title, circuit = found["protocol"], found["circuit"]
@@ -996,7 +1176,8 @@ class _Lowering(Transformer):
                             bath=bath.items if bath else (),
                             settings=simulate.settings if simulate else (),
                             recordings=tuple(recordings), stimuli=tuple(stimuli),
-                            measures=tuple(measures), file=self.file, span=title.span,
+                            measures=tuple(measures), scans=tuple(scans),
+                            file=self.file, span=title.span,
                             circuit_span=circuit.path_span)
 
     @staticmethod

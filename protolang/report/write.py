@@ -118,7 +118,21 @@ def write_run(out_dir: str | os.PathLike, plan: "Plan", recordings: "Recordings"
     # Serialise first: a provenance that cannot be written must not leave half a run folder.
     prov_text = json.dumps(provenance, indent=1, default=_json_default)
     out = Path(out_dir)
-    table_dir = out / "tables"
+    written = write_tables(out, tables)
+    for rel, path in write_figures(out / "figures", plan, recordings, tables).items():
+        written[f"figures/{rel}"] = path
+    written["plan.json"] = _write_text(out / "plan.json", plan.to_json())
+    written["provenance.json"] = _write_text(out / "provenance.json", prov_text)
+    return {k: p.resolve() for k, p in written.items()}
+
+
+def write_tables(out_dir: str | os.PathLike, tables: dict[str, "pd.DataFrame"]) -> dict[str, Path]:
+    """Write each table as ``out_dir/tables/<name>.csv`` and ``.parquet``, atomically.
+
+    Returns:
+        ``{"tables/<name>.csv": Path, ...}``.
+    """
+    table_dir = Path(out_dir) / "tables"
     table_dir.mkdir(parents=True, exist_ok=True)
     written: dict[str, Path] = {}
     for name, df in tables.items():
@@ -126,11 +140,7 @@ def write_run(out_dir: str | os.PathLike, plan: "Plan", recordings: "Recordings"
             table_dir / f"{name}.csv", lambda tmp, df=df: df.to_csv(tmp, index=False))
         written[f"tables/{name}.parquet"] = atomic_write(
             table_dir / f"{name}.parquet", lambda tmp, df=df: df.to_parquet(tmp, index=False, engine="pyarrow"))
-    for rel, path in write_figures(out / "figures", plan, recordings, tables).items():
-        written[f"figures/{rel}"] = path
-    written["plan.json"] = _write_text(out / "plan.json", plan.to_json())
-    written["provenance.json"] = _write_text(out / "provenance.json", prov_text)
-    return {k: p.resolve() for k, p in written.items()}
+    return written
 
 
 def slug(name: str) -> str:
