@@ -40,6 +40,51 @@ class CurrentPulse:
 
 
 @dataclass
+class WaveSegment:
+    """A deterministic stimulus segment on [start, stop) (s), rendered by ``plan.waveforms``.
+
+    ``kind``: "square" (``amplitude``), "ramp" (``amplitude`` -> ``amplitude_end``), "sine"
+    (``amplitude`` x sin(2 pi ``frequency`` t) + ``offset``), "chirp" (frequency rising linearly
+    from ``frequency`` to ``frequency_end``). Amplitudes are currents (A) in current clamp and
+    command offsets from the holding potential (V) in voltage clamp. ``per_sweep`` (n_sweeps,)
+    replaces ``amplitude`` sweep by sweep (a family of steps).
+    """
+
+    kind: str
+    start: float
+    stop: float
+    amplitude: float = 0.0
+    amplitude_end: float = 0.0
+    frequency: float = 0.0
+    frequency_end: float = 0.0
+    offset: float = 0.0
+    per_sweep: np.ndarray | None = None
+
+
+@dataclass
+class NoiseSpec:
+    """Ornstein-Uhlenbeck input on [start, stop): a current (A) or, with ``reversal``, a conductance (S)."""
+
+    mean: float
+    sd: float
+    tau: float
+    start: float
+    stop: float
+    reversal: float | None = None
+
+
+@dataclass
+class PoissonSpec:
+    """Poisson spike input at ``rate`` (Hz) through ``receptor``, peak ``conductance`` (S) per spike."""
+
+    rate: float
+    conductance: float
+    receptor: str
+    start: float
+    stop: float
+
+
+@dataclass
 class RolePlan:
     """One selected cell role (``pre``, ``post``...) across all repeats."""
 
@@ -50,13 +95,17 @@ class RolePlan:
     positions: np.ndarray                        # (n_repeat, 3) m
     params: dict[str, np.ndarray]                # model parameters, SI, each (n_repeat,)
     recorded: bool = False
-    mode: str = "current clamp"                  # or "off"
+    mode: str = "current clamp"                  # or "voltage clamp" or "off"
     holding_current: np.ndarray | None = None    # (n_repeat,) A, includes bias for a held potential
     holding_potential: float | None = None       # V, when holding was asked as a potential
     noise_sd: float = 0.0                        # V, Gaussian recording noise added to the trace
     pulses: list[CurrentPulse] = field(default_factory=list)
     spike_times: np.ndarray | None = None        # explicit firing times (s): the role is a spike source
     events: list[StimulusEvent] = field(default_factory=list)
+    segments: list[WaveSegment] = field(default_factory=list)   # steps, ramps, sines, chirps, families
+    noise: list[NoiseSpec] = field(default_factory=list)
+    poisson: list[PoissonSpec] = field(default_factory=list)
+    series_resistance: float | None = None       # Ohm, voltage clamp only
 
 
 @dataclass
