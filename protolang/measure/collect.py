@@ -71,8 +71,16 @@ def collect(plan: "Plan", recordings: "Recordings") -> dict[str, pd.DataFrame]:
         AssertionError: an internal error (unknown collector or option, a measured cell
             without traces, a source without a synapse): the front end checks these.
     """
+    from .cells import CELL_COLLECTORS, collect_cells
+
     parts: dict[str, list[pd.DataFrame]] = {}
+    cell_measures = [m for m in plan.measures if m.collector in CELL_COLLECTORS]
+    if cell_measures:
+        for name, table in collect_cells(plan, recordings, cell_measures).items():
+            parts.setdefault(name, []).append(table)
     for measure in plan.measures:
+        if measure.collector in CELL_COLLECTORS:
+            continue
         if measure.collector == "responses":
             responses, connections = collect_responses(plan, recordings, measure)
             parts.setdefault("responses", []).append(responses)

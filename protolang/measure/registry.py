@@ -29,6 +29,32 @@ COLLECTORS: dict[str, dict] = {
         "tables": ["spikes"],
         "description": "spike count, first spike and rate of the cell in every sweep",
     },
+    "passive": {
+        "needs_source": False,
+        "needs_recording": True,
+        "needs_step": "hyperpolarising",
+        "options": {},
+        "tables": ["cells", "classes"],
+        "description": "resting potential, input resistance, membrane time constant and sag from the "
+                       "smallest hyperpolarising step",
+    },
+    "firing": {
+        "needs_source": False,
+        "needs_recording": True,
+        "needs_step": "depolarising",
+        "options": {},
+        "tables": ["cell_sweeps", "cells", "classes"],
+        "description": "spikes during each depolarising step: count, rate, latency, spike shape, "
+                       "adaptation, firing-pattern label",
+    },
+    "fi": {
+        "needs_source": False,
+        "needs_recording": True,
+        "needs_step": "family",
+        "options": {},
+        "tables": ["cell_sweeps", "cells", "classes"],
+        "description": "firing rate against step current over a family of steps; F-I slope; lowest step that fires",
+    },
 }
 
 
