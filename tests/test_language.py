@@ -480,12 +480,12 @@ def test_bad_inputs_are_distinct_and_enough():
 
 def test_lowering_errors_are_collected_and_sorted():
     text = _edit("sweeps 30 every 10 s", "sweeps 0 every 1 mV, lasting 2 Hz").replace(
-        "record post: current clamp", "record psot: voltage clamp")
+        "record post: current clamp", "record psot: voltage clmap")
     with pytest.raises(ProtocolError) as info:
         parse(text, "x.protocol")
     where = [(d.span.line, d.span.column) for d in info.value.diagnostics]
     assert where == sorted(where) and len(where) == 5
-    assert "unknown recording mode 'voltage clamp'" in str(info.value)
+    assert "unknown recording mode 'voltage clmap'" in str(info.value)
 
 
 def test_unit_suggestions_prefer_case_slips():

@@ -98,13 +98,17 @@ class Setting:
 class Recording:
     """``record post: current clamp, holding -70 mV, noise 0.1 mV``.
 
-    ``mode`` is ``"current clamp"`` or ``"off"``. ``holding`` is a current (injected) or a
-    voltage (reached by a bias current computed from the cell model).
+    ``mode`` is ``"current clamp"``, ``"voltage clamp"`` or ``"off"``. In current clamp
+    ``holding`` is a current (injected) or a voltage (reached by a bias current computed
+    from the cell model) and ``noise`` a voltage; in voltage clamp ``holding`` is the
+    command potential (required), ``noise`` a current and ``series`` the series
+    resistance (None: the documented default).
     """
     cell: str
     mode: str
     holding: Quantity | None = None
     noise: Quantity | None = None
+    series: Quantity | None = None
     span: Span | None = _span()
 
 
@@ -134,6 +138,104 @@ class SpikeTimes:
     """``spikes at 100 ms, 150 ms, 600 ms``: the cell is made to fire at these times."""
     times: tuple[Quantity, ...]
     span: Span | None = _span()
+
+
+@node
+class Step:
+    """``step 200 pA for 500 ms at 100 ms``: one square step of current (or of command
+    voltage, relative to the holding potential, on a voltage-clamped cell)."""
+    amplitude: Quantity
+    duration: Quantity
+    at: Quantity
+    span: Span | None = _span()
+
+
+@node
+class StepFamily:
+    """``steps of -100 pA to 300 pA by 50 pA for 500 ms at 100 ms`` (``step`` set) or
+    ``... in 9 steps ...`` (``count`` set): sweep k gets ``values[k]``.
+
+    ``values`` are the amplitudes in sweep order, in the unit of ``start``; empty while a
+    bound is still a scan reference (each scan point fills them in).
+    """
+    start: Quantity
+    stop: Quantity
+    step: Quantity | None = None
+    count: int | None = None
+    duration: Quantity
+    at: Quantity
+    values: tuple[Quantity, ...] = ()
+    span: Span | None = _span()
+
+
+@node
+class Ramp:
+    """``ramp 0 pA to 300 pA from 100 ms to 1100 ms``: a linear ramp between two times."""
+    start_amplitude: Quantity
+    stop_amplitude: Quantity
+    start: Quantity
+    stop: Quantity
+    span: Span | None = _span()
+
+
+@node
+class Sine:
+    """``sine 50 pA at 5 Hz from 0 s to 2 s, offset 20 pA``."""
+    amplitude: Quantity
+    frequency: Quantity
+    start: Quantity
+    stop: Quantity
+    offset: Quantity | None = None
+    span: Span | None = _span()
+
+
+@node
+class Chirp:
+    """``chirp 50 pA sweeping 0.5 Hz to 20 Hz from 0 s to 10 s``: a sine whose frequency
+    rises linearly from ``f_start`` at ``start`` to ``f_stop`` at ``stop``."""
+    amplitude: Quantity
+    f_start: Quantity
+    f_stop: Quantity
+    start: Quantity
+    stop: Quantity
+    span: Span | None = _span()
+
+
+@node
+class Noise:
+    """``noise mean 0 pA sd 50 pA tau 5 ms from 0 s to 2 s``: an Ornstein-Uhlenbeck current,
+    or a conductance (``mean``/``sd`` in siemens) driving towards ``reversal``."""
+    mean: Quantity
+    sd: Quantity
+    tau: Quantity
+    start: Quantity
+    stop: Quantity
+    reversal: Quantity | None = None
+    span: Span | None = _span()
+
+
+@node
+class PoissonInput:
+    """``poisson 500 Hz of 0.5 nS AMPA from 0 s to 2 s``: Poisson spikes at total ``rate``,
+    each opening ``receptor`` with peak conductance ``conductance``."""
+    rate: Quantity
+    conductance: Quantity
+    receptor: str
+    start: Quantity
+    stop: Quantity
+    span: Span | None = _span()
+    receptor_span: Span | None = _span()
+
+
+@node
+class Activate:
+    """``activate 30 % of basket_fast at 100 ms, 150 ms``: extracellular stimulation that
+    makes ``fraction`` of the ``cell_class`` cells projecting to this cell fire at ``times``."""
+    fraction: Quantity
+    cell_class: str
+    times: tuple[Quantity, ...]
+    span: Span | None = _span()
+    class_span: Span | None = _span()
 
 
 @node

@@ -133,6 +133,8 @@ def _recording(r: ast.Recording) -> str:
         parts.append(f"holding {_quantity(r.holding)}")
     if r.noise is not None:
         parts.append(f"noise {_quantity(r.noise)}")
+    if r.series is not None:
+        parts.append(f"series {_quantity(r.series)}")
     return f"record {r.cell}: " + ", ".join(parts)
 
 
@@ -146,7 +148,45 @@ def _stimulus(item) -> str:
                 f"from {_quantity(item.start)}")
     if isinstance(item, ast.SpikeTimes):
         return "spikes at " + ", ".join(_quantity(t) for t in item.times)
+    if isinstance(item, ast.Step):
+        return (f"step {_quantity(item.amplitude)} for {_quantity(item.duration)} "
+                f"at {_quantity(item.at)}")
+    if isinstance(item, ast.StepFamily):
+        if (item.step is None) == (item.count is None):
+            raise ValueError(f"a step family needs either a step or a count, not "
+                             f"{'both' if item.step is not None else 'neither'}: {item!r}")
+        spacing = (f"by {_quantity(item.step)}" if item.step is not None
+                   else f"in {item.count} steps")
+        return (f"steps of {_quantity(item.start)} to {_quantity(item.stop)} {spacing} "
+                f"for {_quantity(item.duration)} at {_quantity(item.at)}")
+    if isinstance(item, ast.Ramp):
+        return (f"ramp {_quantity(item.start_amplitude)} to {_quantity(item.stop_amplitude)}"
+                f"{_window(item)}")
+    if isinstance(item, ast.Sine):
+        line = f"sine {_quantity(item.amplitude)} at {_quantity(item.frequency)}{_window(item)}"
+        if item.offset is not None:
+            line += f", offset {_quantity(item.offset)}"
+        return line
+    if isinstance(item, ast.Chirp):
+        return (f"chirp {_quantity(item.amplitude)} sweeping {_quantity(item.f_start)} "
+                f"to {_quantity(item.f_stop)}{_window(item)}")
+    if isinstance(item, ast.Noise):
+        line = (f"noise mean {_quantity(item.mean)} sd {_quantity(item.sd)} "
+                f"tau {_quantity(item.tau)}{_window(item)}")
+        if item.reversal is not None:
+            line += f", reversal {_quantity(item.reversal)}"
+        return line
+    if isinstance(item, ast.PoissonInput):
+        return (f"poisson {_quantity(item.rate)} of {_quantity(item.conductance)} "
+                f"{item.receptor}{_window(item)}")
+    if isinstance(item, ast.Activate):
+        return (f"activate {_quantity(item.fraction)} of {item.cell_class} at "
+                + ", ".join(_quantity(t) for t in item.times))
     raise ValueError(f"unknown stimulus {item!r}")
+
+
+def _window(item) -> str:
+    return f" from {_quantity(item.start)} to {_quantity(item.stop)}"
 
 
 def _measure_item(item: ast.MeasureItem) -> str:

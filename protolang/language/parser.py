@@ -26,7 +26,7 @@ from lark.lexer import PatternStr
 
 from . import ast
 from .errors import Collector, Diagnostic, ProtocolError, Span, remember_source, suggest
-from .units import DIMENSIONS, UNITS, Quantity, check_unit, expect, to_si
+from .units import DIMENSIONS, DISPLAY, UNITS, Quantity, check_unit, expect, to_si
 
 __all__ = ["parse", "parse_file"]
 
@@ -277,18 +277,36 @@ def _expected_names(exc: UnexpectedInput) -> set[str]:
     return {n for n in names if not n.startswith("__")}
 
 
+# Keywords that start a stimulus line, by what they deliver: a line that may begin with any
+# of them lists them in these groups rather than as one long run of words.
+_KEYWORD_GROUPS = (
+    ("a presynaptic event", ("pulse", "spikes", "train")),
+    ("a waveform", ("chirp", "noise", "ramp", "sine", "step", "steps")),
+    ("a synaptic input", ("activate", "poisson")),
+)
+
+
+def _or_list(words: list[str]) -> str:
+    if len(words) == 1:
+        return words[0]
+    return ", ".join(words[:-1]) + " or " + words[-1]
+
+
 def _describe_expected(names: set[str]) -> str:
     keywords = _keywords()
     order = list(_TERMINAL_WORDS)
     words = [_TERMINAL_WORDS[n] for n in sorted((n for n in names if n in _TERMINAL_WORDS),
                                                  key=order.index)]
-    words += sorted(f"'{keywords[n]}'" for n in names if n in keywords)
+    literals = {keywords[n] for n in names if n in keywords}
+    for label, group in _KEYWORD_GROUPS:
+        if literals.issuperset(group):
+            words.append(f"{label} (" + _or_list([f"'{w}'" for w in group]) + ")")
+            literals -= set(group)
+    words += sorted(f"'{w}'" for w in literals)
     words += sorted(n.lower() for n in names if n not in keywords and n not in _TERMINAL_WORDS)
     if not words:
         return "nothing more on this line"
-    if len(words) == 1:
-        return words[0]
-    return ", ".join(words[:-1]) + " or " + words[-1]
+    return _or_list(words)
 
 
 def _describe_token(tok: Token) -> str:
@@ -327,6 +345,9 @@ def _syntax_diagnostic(exc: UnexpectedInput, text: str, file: str) -> Diagnostic
     if isinstance(exc, UnexpectedCharacters):
         return _bad_character(exc, text, file)
     if isinstance(exc, UnexpectedToken):
+        glued = _glued_in_lexer(exc)
+        if glued is not None:
+            return _glued_diagnostic(glued, file)
         return _bad_token(exc, text, file)
     line, column = _clamp(text, exc.line, exc.column)
     return Diagnostic("unexpected end of file", Span(file, line, column, line, column + 1),
@@ -428,6 +449,23 @@ def _bad_token(exc: UnexpectedToken, text: str, file: str) -> Diagnostic:
                       hint=hint)
 
 
+def _glued_in_lexer(exc: UnexpectedToken) -> _GluedKeyword | None:
+    """A keyword run into the next word that the lexer, not the post-lexer, tripped over.
+
+    After a keyword that must be followed by a number ('step' in 'stepp 10 pA') the rest of
+    the word fits no terminal of that state, so lark re-lexes it and raises before the
+    post-lexer's own check sees it.
+    """
+    history = getattr(exc, "token_history", None) or ()
+    tok = exc.token
+    previous = history[-1] if history else None
+    if (previous is None or not isinstance(previous, Token) or tok.type not in ("NAME", "UNIT")
+            or previous.type != str(previous).upper() or previous.type in _VALUE_TOKENS
+            or previous.end_pos != tok.start_pos or not _WORD_CHAR.match(str(tok))):
+        return None
+    return _GluedKeyword(previous, tok)
+
+
 def _glued_diagnostic(exc: _GluedKeyword, file: str) -> Diagnostic:
     keyword, rest = str(exc.keyword), str(exc.rest)
     word = keyword + rest
@@ -524,14 +562,32 @@ _BATH_SETTINGS = {"calcium": ("concentration", "2.0 mM"), "magnesium": ("concent
 # Bath temperatures a slice survives, in kelvin (0 to 45 degC).
 _TEMPERATURE_RANGE = (273.15, 318.15)
 _SETTINGS = {"isolated": None, "deterministic": None, "timestep": "time", "sampling": "frequency"}
-_RECORD_MODES = ("current clamp", "off")
-_RECORD_OPTIONS = ("holding", "noise")
+_RECORD_MODES = ("current clamp", "voltage clamp", "off")
+_RECORD_OPTIONS = ("holding", "noise", "series")
 # Option name -> (dimension, smallest allowed value, whether the smallest is allowed).
 _MEASURE_OPTIONS = {
     "window": ("time", 0.0, False),
     "baseline": ("time", 0.0, False),
     "threshold": ("voltage", 0.0, True),
     "noise_factor": ("number", 0.0, False),
+    "low": ("current", None, True),
+    "high": ("current", None, True),
+    "tolerance": ("current", 0.0, False),
+    "width": ("time", 0.0, False),
+    "rounds": ("number", 0.0, False),
+    "step": ("current", None, True),
+    "bin": ("time", 0.0, False),
+}
+# Most amplitudes a step family may list (it needs one sweep per amplitude).
+_MAX_FAMILY_VALUES = 1000
+# Dimension -> its name in a message ("needs a current or a voltage").
+_KIND = {dim: text.split(" (")[0] for dim, text in DIMENSIONS.items()}
+# Stimulus node -> how messages name it.
+_STIMULUS_WORDS = {
+    ast.Pulse: "current pulses", ast.Train: "current pulses", ast.SpikeTimes: "spike times",
+    ast.Step: "a step", ast.StepFamily: "a step family", ast.Ramp: "a ramp", ast.Sine: "a sine",
+    ast.Chirp: "a chirp", ast.Noise: "noise", ast.PoissonInput: "Poisson input",
+    ast.Activate: "extracellular activation",
 }
 # Statement -> (what it gives, an example of it).
 _REQUIRED = {
@@ -560,6 +616,31 @@ def _number(value: float) -> str:
     return f"{value:g}"
 
 
+def _shown(q) -> str:
+    """A quantity or scan reference as the user would write it."""
+    return f"@{q.name}" if isinstance(q, ast.ScanRef) else str(q)
+
+
+def _drive_of(item) -> tuple[str, Quantity] | None:
+    """The kind of drive a stimulus delivers and the amplitude that shows it, if known yet.
+
+    Returns ("current" | "voltage" | "conductance", quantity) or None for synaptic input,
+    spike times, and amplitudes that are still scan references.
+    """
+    if isinstance(item, (ast.Pulse, ast.Train)):
+        return ("current", item.amplitude) if isinstance(item.amplitude, Quantity) else None
+    slots = {
+        ast.Step: ("amplitude",), ast.StepFamily: ("start", "stop", "step"),
+        ast.Ramp: ("start_amplitude", "stop_amplitude"), ast.Sine: ("amplitude", "offset"),
+        ast.Chirp: ("amplitude",), ast.Noise: ("mean", "sd"),
+    }.get(type(item), ())
+    for slot in slots:
+        q = getattr(item, slot)
+        if isinstance(q, Quantity):
+            return q.dimension, q
+    return None
+
+
 @v_args(meta=True)
 class _Lowering(Transformer):
     """Turns the lark parse tree into AST nodes; collects every lowering error."""
@@ -574,6 +655,9 @@ class _Lowering(Transformer):
         self.point = point
         self.scan_uses: list[ast.ScanRef] = []
         self.failed_scans: set[str] = set()  # scans with their own error: uses are not "unscanned"
+        # Cells whose record line has its own error: their stimuli are not checked against a mode.
+        self.failed_records: set[str] = set()
+        self.sweep_count_ok = True
 
     # --- helpers ---------------------------------------------------------------------
     def _span(self, meta) -> Span:
@@ -911,6 +995,7 @@ class _Lowering(Transformer):
     def sweeps(self, meta, children) -> ast.Sweeps | None:
         count, interval, length = children
         n = self._count(count, "the sweep count")
+        self.sweep_count_ok = n is not None
         self._quantity(interval, "time", "the sweep interval", minimum=0.0, inclusive=False)
         self._quantity(length, "time", "the sweep length", minimum=0.0, inclusive=False)
         return ast.Sweeps(count=n if n is not None else 1, interval=interval, length=length,
@@ -959,18 +1044,21 @@ class _Lowering(Transformer):
         cell, mode, *options = children
         self.references.append(_Reference(str(cell), self._tspan(cell), "record"))
         ok = True
-        if mode.text not in _RECORD_MODES:
+        known_mode = mode.text in _RECORD_MODES
+        if not known_mode:
             self.c.fail(f"unknown recording mode {mode.text!r}", mode.span,
-                        expected="'current clamp' or 'off'",
+                        expected="'current clamp', 'voltage clamp' or 'off'",
                         hint=suggest(mode.text, _RECORD_MODES)
-                        or "v1 records in current clamp; 'off' simulates the cell unrecorded")
+                        or "record in 'current clamp' or 'voltage clamp'; 'off' simulates the "
+                           "cell unrecorded")
             ok = False
         values: dict[str, Quantity] = {}
+        spans: dict[str, Span] = {}
         seen: dict = {}
         for opt in options:
             if opt.name not in _RECORD_OPTIONS:
                 self.c.fail(f"unknown record option {opt.name!r}", opt.span,
-                            expected="holding Q or noise Q",
+                            expected="holding Q, noise Q or series Q",
                             hint=suggest(opt.name, _RECORD_OPTIONS))
                 ok = False
                 continue
@@ -978,17 +1066,60 @@ class _Lowering(Transformer):
                 ok = False
                 continue
             values[opt.name] = opt.value
-        holding = values.get("holding")
-        if holding is not None:
-            ok = self._holding(holding) and ok
-        noise = values.get("noise")
-        if noise is not None:
-            noise_sd = self._quantity(noise, "voltage", "the recording noise", minimum=0.0)
-            ok = noise_sd is not None and ok
+            spans[opt.name] = opt.span
+        holding, noise, series = (values.get(k) for k in ("holding", "noise", "series"))
+        if not known_mode:
+            # Which dimensions fit depends on the mode; report only what is wrong either way.
+            for q in values.values():
+                if not isinstance(q, ast.ScanRef):
+                    self._known_unit(q, tuple(DIMENSIONS))
+        elif mode.text == "voltage clamp":
+            ok = self._clamp_options(str(cell), mode, holding, noise, series) and ok
+        else:
+            if holding is not None:
+                ok = self._holding(holding) and ok
+            if noise is not None:
+                noise_sd = self._quantity(noise, "voltage", "the recording noise", minimum=0.0)
+                ok = noise_sd is not None and ok
+            if series is not None:
+                self.c.fail("a series resistance applies only in voltage clamp", spans["series"],
+                            expected=f"holding Q or noise Q in {mode.text!r}",
+                            hint=f"drop it, or write 'record {cell}: voltage clamp, holding "
+                                 f"-70 mV, series {_shown(series)}'")
+                ok = False
         if not ok:
+            self.failed_records.add(str(cell))
             return None
         return ast.Recording(cell=str(cell), mode=mode.text, holding=holding, noise=noise,
-                             span=self._span(meta))
+                             series=series, span=self._span(meta))
+
+    def _clamp_options(self, cell: str, mode: _Mode, holding, noise, series) -> bool:
+        """Check the options of a voltage-clamp recording; True if they all fit."""
+        ok = True
+        if holding is None:
+            self.c.fail("voltage clamp needs a holding potential", mode.span,
+                        expected="'holding V', the command potential (a voltage)",
+                        hint=f"e.g. 'record {cell}: voltage clamp, holding -70 mV'")
+            ok = False
+        elif not isinstance(holding, ast.ScanRef):
+            if not self._known_unit(holding, ("voltage",)):
+                ok = False
+            elif holding.dimension != "voltage":
+                got = "a plain number" if not holding.unit else \
+                    f"{holding.unit!r} ({holding.dimension})"
+                self.c.fail(f"in voltage clamp, holding is the command potential and needs a "
+                            f"voltage, got {got}", holding.span,
+                            expected=DIMENSIONS["voltage"],
+                            hint="a clamped cell is held at a potential, e.g. 'holding -70 mV'; "
+                                 "a holding current belongs to 'current clamp'")
+                ok = False
+        if noise is not None:
+            ok = self._quantity(noise, "current", "the current noise of a voltage clamp",
+                                minimum=0.0) is not None and ok
+        if series is not None:
+            ok = self._quantity(series, "resistance", "the series resistance", minimum=0.0,
+                                inclusive=False) is not None and ok
+        return ok
 
     def _holding(self, q: Quantity) -> bool:
         if isinstance(q, ast.ScanRef):
@@ -1036,39 +1167,329 @@ class _Lowering(Transformer):
                          span=self._span(meta))
 
     def spike_times(self, meta, children) -> ast.SpikeTimes | None:
+        if not self._times(children, "a spike time", "spike times"):
+            return None
+        return ast.SpikeTimes(times=tuple(children), span=self._span(meta))
+
+    def _times(self, times, what: str, plural: str) -> bool:
+        """Check a list of event times: each a time >= 0, strictly increasing."""
         ok = True
         previous: tuple[float, Quantity] | None = None
-        for q in children:
-            t = self._quantity(q, "time", "a spike time", minimum=0.0)
+        for q in times:
+            t = self._quantity(q, "time", what, minimum=0.0)
             if t is None:
                 ok = False
                 continue
             if previous is not None and t <= previous[0]:
-                self.c.fail(f"spike times must increase: {q} comes after {previous[1]}", q.span,
-                            expected=f"a time later than {previous[1]}",
-                            hint="list the spike times in increasing order, each once")
+                self.c.fail(f"{plural} must increase: {_shown(q)} comes after "
+                            f"{_shown(previous[1])}", q.span,
+                            expected=f"a time later than {_shown(previous[1])}",
+                            hint=f"list the {plural} in increasing order, each once")
                 ok = False
-            previous = (t, q)
+            if not math.isnan(t):
+                previous = (t, q)
+        return ok
+
+    def _drive(self, q, what: str, kinds: tuple[str, ...] = ("current", "voltage")) -> float | None:
+        """SI value of a slot that takes one of several dimensions (NaN for a scan reference).
+
+        Amplitude slots take a current (current clamp) or a voltage (a command step from the
+        holding potential, voltage clamp); which one fits the cell is checked once the whole
+        file is read.
+        """
+        if q is None:
+            return None
+        if isinstance(q, ast.ScanRef):
+            return math.nan
+        if not self._known_unit(q, kinds):
+            return None
+        if q.dimension in kinds:
+            return q.si
+        got = "a plain number" if not q.unit else f"{q.unit!r} ({q.dimension})"
+        if not q.unit:
+            hint = "add a unit, e.g. " + " or ".join(f"{_number(q.value)} {DISPLAY[k]}"
+                                                     for k in kinds)
+        elif kinds == ("current", "voltage"):
+            hint = ("a current (pA, nA) for a current-clamped cell, a voltage (mV) for a "
+                    "voltage-clamped one")
+        else:
+            hint = "a current (pA, nA) for current noise, a conductance (nS) for conductance noise"
+        self.c.fail(f"{what} needs " + " or ".join(_KIND[k] for k in kinds) + f", got {got}",
+                    q.span, expected=" or ".join(DIMENSIONS[k] for k in kinds), hint=hint)
+        return None
+
+    def _same_kind(self, stimulus: str, quantities) -> bool:
+        """True if the valid, known quantities of one stimulus share one dimension."""
+        known = [q for q in quantities if q is not None and not isinstance(q, ast.ScanRef)]
+        for q in known[1:]:
+            if q.dimension != known[0].dimension:
+                first = known[0]
+                self.c.fail(f"{stimulus} mixes {_KIND[first.dimension]} and {_KIND[q.dimension]}: "
+                            f"{first} and {q}", q.span,
+                            expected=f"{DIMENSIONS[first.dimension]}, like {first}",
+                            hint="give every amplitude of one stimulus in the same kind of unit")
+                return False
+        return True
+
+    def _window(self, start, stop, what: str) -> bool:
+        """Check ``from T1 to T2``: T1 a time >= 0, T2 a time after T1."""
+        t1 = self._quantity(start, "time", f"the {what} start", minimum=0.0)
+        t2 = self._quantity(stop, "time", f"the {what} end")
+        if t1 is None or t2 is None:
+            return False
+        if t2 <= t1:
+            hint = (f"did you mean 'from {_shown(stop)} to {_shown(start)}'?" if t2 < t1 else
+                    "the window reads 'from START to END', with END later than START")
+            self.c.fail(f"{what} ends before it starts: {_shown(stop)} is not later than "
+                        f"{_shown(start)}", stop.span,
+                        expected=f"a time later than {_shown(start)}", hint=hint)
+            return False
+        return True
+
+    def _not_negative(self, q, value: float | None, what: str) -> bool:
+        """For slots with a choice of dimension, where ``_quantity`` cannot check the bound."""
+        if value is not None and value < 0:
+            self.c.fail(f"{what} must be at least 0, got {q}", q.span,
+                        expected=f"{_KIND[q.dimension]}, 0 or more",
+                        hint=f"write it as {_number(-q.value)} {q.unit}")
+            return False
+        return value is not None
+
+    def step(self, meta, children) -> ast.Step | None:
+        amplitude, width, at = children
+        ok = self._drive(amplitude, "the step amplitude") is not None
+        ok = self._quantity(width, "time", "the step duration", minimum=0.0, inclusive=False) \
+            is not None and ok
+        ok = self._quantity(at, "time", "the step start", minimum=0.0) is not None and ok
         if not ok:
             return None
-        return ast.SpikeTimes(times=tuple(children), span=self._span(meta))
+        return ast.Step(amplitude=amplitude, duration=width, at=at, span=self._span(meta))
+
+    def step_family(self, meta, children) -> ast.StepFamily | None:
+        start, stop, spacing, width, at = children
+        span = self._span(meta)
+        by = not isinstance(spacing, _Count)
+        ends = [(start, "the first amplitude of the family"),
+                (stop, "the last amplitude of the family")]
+        if by:
+            ends.append((spacing, "the family's step"))
+        good = [q for q, what in ends if self._drive(q, what) is not None]
+        ok = len(good) == len(ends)
+        ok = self._same_kind("the step family", good) and ok
+        count = None
+        if not by:
+            count = self._count(spacing, "the number of amplitudes in the family")
+            ok = count is not None and ok
+        ok = self._quantity(width, "time", "the step duration", minimum=0.0, inclusive=False) \
+            is not None and ok
+        ok = self._quantity(at, "time", "the step start", minimum=0.0) is not None and ok
+        if not ok:
+            return None
+        values = self._family_values(start, stop, spacing if by else None, count,
+                                     None if by else spacing, span)
+        if values is None:
+            return None
+        return ast.StepFamily(start=start, stop=stop, step=spacing if by else None, count=count,
+                              duration=width, at=at, values=values, span=span)
+
+    def _family_values(self, start, stop, step, count: int | None, count_slot: _Count | None,
+                       span: Span) -> tuple[Quantity, ...] | None:
+        """The amplitudes of a step family, () while a bound is a scan reference, None on error."""
+        if count is not None and count < 2:
+            self.c.fail(f"a step family needs at least 2 amplitudes, got {count}",
+                        count_slot.span, expected="2 or more amplitudes",
+                        hint="for one amplitude write 'step A for W at T'")
+            return None
+        if any(isinstance(q, ast.ScanRef) for q in (start, stop, step)):
+            return ()
+        lo, hi = start.si, stop.si
+        if step is not None:
+            d = step.si
+            if d == 0:
+                self.c.fail("a step family with a zero step never reaches its end", step.span,
+                            expected=f"a non-zero step towards {stop}",
+                            hint="give a step, or use 'in N steps' for N evenly spaced amplitudes")
+                return None
+            if (hi - lo) * d < 0:
+                self.c.fail(f"a step of {step} goes away from {stop}", step.span,
+                            expected=f"a step with the sign of {stop} minus {start}",
+                            hint=f"flip the sign: 'by {_number(-step.value)} {step.unit}'")
+                return None
+            n = int(math.floor((hi - lo) / d + 1e-9)) + 1
+            spaced = [lo + d * k for k in range(min(n, _MAX_FAMILY_VALUES + 1))]
+        else:
+            if hi == lo:
+                self.c.fail(f"a step family from {start} to {stop} has a zero step", stop.span,
+                            expected=f"a last amplitude other than {start}",
+                            hint="for one amplitude write 'step A for W at T'")
+                return None
+            n = count
+            spaced = [lo + (hi - lo) * k / (n - 1) for k in range(min(n, _MAX_FAMILY_VALUES + 1))]
+        if n > _MAX_FAMILY_VALUES:
+            self.c.fail(f"this step family has {n} amplitudes, more than {_MAX_FAMILY_VALUES}",
+                        span, expected=f"at most {_MAX_FAMILY_VALUES} amplitudes (one per sweep)",
+                        hint="use a larger step or fewer steps")
+            return None
+        if n < 2:
+            self.c.fail(f"a step family needs at least 2 amplitudes, got {n}", step.span,
+                        expected="a step no larger than the distance from the first to the "
+                                 "last amplitude",
+                        hint="use a smaller step, or write one 'step A for W at T'")
+            return None
+        factor = to_si(1.0, start.unit)
+        return tuple(Quantity(_tidy(v / factor), start.unit, span) for v in spaced)
+
+    def ramp(self, meta, children) -> ast.Ramp | None:
+        first, last, start, stop = children
+        ends = ((first, "the ramp's first amplitude"), (last, "the ramp's last amplitude"))
+        good = [q for q, what in ends if self._drive(q, what) is not None]
+        ok = len(good) == 2 and self._same_kind("the ramp", good)
+        ok = self._window(start, stop, "ramp") and ok
+        if not ok:
+            return None
+        return ast.Ramp(start_amplitude=first, stop_amplitude=last, start=start, stop=stop,
+                        span=self._span(meta))
+
+    def sine(self, meta, children) -> ast.Sine | None:
+        amplitude, frequency, start, stop, offset = children
+        ok = self._not_negative(amplitude, self._drive(amplitude, "the sine amplitude"),
+                                "the sine amplitude")
+        if offset is not None:
+            ok = self._drive(offset, "the sine offset") is not None and ok
+            ok = ok and self._same_kind("the sine", (amplitude, offset))
+        ok = self._quantity(frequency, "frequency", "the sine frequency", minimum=0.0,
+                            inclusive=False) is not None and ok
+        ok = self._window(start, stop, "sine") and ok
+        if not ok:
+            return None
+        return ast.Sine(amplitude=amplitude, frequency=frequency, start=start, stop=stop,
+                        offset=offset, span=self._span(meta))
+
+    def chirp(self, meta, children) -> ast.Chirp | None:
+        amplitude, f_start, f_stop, start, stop = children
+        ok = self._not_negative(amplitude, self._drive(amplitude, "the chirp amplitude"),
+                                "the chirp amplitude")
+        low = self._quantity(f_start, "frequency", "the chirp's first frequency", minimum=0.0)
+        high = self._quantity(f_stop, "frequency", "the chirp's last frequency")
+        if low is not None and high is not None and high <= low:
+            hint = (f"swap them: 'sweeping {_shown(f_stop)} to {_shown(f_start)}'" if high < low
+                    else "for one fixed frequency write 'sine A at F from T1 to T2'")
+            self.c.fail(f"chirp frequencies reversed: a chirp rises from {_shown(f_start)}, "
+                        f"so it cannot end at {_shown(f_stop)}", f_stop.span,
+                        expected=f"a frequency above {_shown(f_start)}", hint=hint)
+            ok = False
+        ok = low is not None and high is not None and ok
+        ok = self._window(start, stop, "chirp") and ok
+        if not ok:
+            return None
+        return ast.Chirp(amplitude=amplitude, f_start=f_start, f_stop=f_stop, start=start,
+                         stop=stop, span=self._span(meta))
+
+    def noise(self, meta, children) -> ast.Noise | None:
+        mean, sd, tau, start, stop, reversal = children
+        span = self._span(meta)
+        kinds = ("current", "conductance")
+        m = self._drive(mean, "the noise mean", kinds)
+        s = self._drive(sd, "the noise SD", kinds)
+        ok = m is not None and s is not None
+        ok = ok and self._same_kind("the noise", (mean, sd))
+        known = [q for q in (mean, sd) if isinstance(q, Quantity) and q.dimension in kinds]
+        kind = known[0].dimension if ok and known else None
+        if s is not None and not self._not_negative(sd, s, "the noise SD"):
+            ok = False
+        if kind == "conductance" and not self._not_negative(mean, m, "a conductance noise mean"):
+            ok = False
+        ok = self._quantity(tau, "time", "the noise time constant", minimum=0.0,
+                            inclusive=False) is not None and ok
+        ok = self._window(start, stop, "noise") and ok
+        if reversal is not None:
+            if self._quantity(reversal, "voltage", "the reversal potential") is None:
+                ok = False
+            elif kind == "current":
+                self.c.fail("a reversal potential applies only to conductance noise",
+                            reversal.span, expected="end of line (current noise drives no "
+                                                    "reversal potential)",
+                            hint="drop ', reversal ...', or give the mean and SD in nS")
+                ok = False
+        elif kind == "conductance":
+            self.c.fail("conductance noise needs a reversal potential", span,
+                        expected="', reversal E' at the end of the line, E a voltage",
+                        hint="e.g. add ', reversal 0 mV' (excitatory) or ', reversal -75 mV' "
+                             "(inhibitory)")
+            ok = False
+        if not ok:
+            return None
+        return ast.Noise(mean=mean, sd=sd, tau=tau, start=start, stop=stop, reversal=reversal,
+                         span=span)
+
+    def poisson(self, meta, children) -> ast.PoissonInput | None:
+        rate, conductance, receptor, start, stop = children
+        r = self._quantity(rate, "frequency", "the Poisson rate")
+        ok = r is not None
+        if r is not None and r < 0:
+            self.c.fail(f"Poisson rate cannot be negative, got {rate}", rate.span,
+                        expected="a frequency, 0 Hz or more",
+                        hint=f"write it as {_number(-rate.value)} {rate.unit}")
+            ok = False
+        if receptor is None:
+            ok = False
+            if isinstance(conductance, Quantity) and conductance.unit \
+                    and conductance.unit not in UNITS:
+                # `of 1 AMPA`: the receptor was read as the conductance's unit.
+                self.c.fail("Poisson input needs a conductance with its unit, then a receptor, "
+                            f"got '{_number(conductance.value)} {conductance.unit}'",
+                            conductance.span, expected="a conductance and a receptor, "
+                                                       "e.g. '0.5 nS AMPA'",
+                            hint=f"did you mean '{_number(conductance.value)} nS "
+                                 f"{conductance.unit}'?")
+            else:
+                self.c.fail("Poisson input needs a receptor after its conductance",
+                            conductance.span,
+                            expected="a receptor type of the circuit, e.g. AMPA, NMDA, GABA_A",
+                            hint=f"e.g. 'poisson {_shown(rate)} of {_shown(conductance)} AMPA "
+                                 f"from {_shown(start)} to {_shown(stop)}'")
+        else:
+            ok = self._quantity(conductance, "conductance", "the peak conductance per input spike",
+                                minimum=0.0) is not None and ok
+        ok = self._window(start, stop, "Poisson input") and ok
+        if not ok:
+            return None
+        return ast.PoissonInput(rate=rate, conductance=conductance, receptor=str(receptor),
+                                start=start, stop=stop, span=self._span(meta),
+                                receptor_span=self._tspan(receptor))
+
+    def activate(self, meta, children) -> ast.Activate | None:
+        fraction, cell_class, *times = children
+        f = self._quantity(fraction, "percent", "the activated fraction", minimum=0.0,
+                           inclusive=False)
+        ok = f is not None
+        if f is not None and f > 1.0:
+            self.c.fail(f"the activated fraction cannot exceed 100 %, got {fraction}",
+                        fraction.span, expected="a percentage above 0 and at most 100",
+                        hint=f"'activate 100 % of {cell_class} ...' fires every projecting cell")
+            ok = False
+        ok = self._times(times, "an activation time", "activation times") and ok
+        if not ok:
+            return None
+        return ast.Activate(fraction=fraction, cell_class=str(cell_class), times=tuple(times),
+                            span=self._span(meta), class_span=self._tspan(cell_class))
 
     def stimulate(self, meta, children) -> ast.Stimulate:
         cell, *items = children
         self.references.append(_Reference(str(cell), self._tspan(cell), "stimulate"))
         items = [i for i in items if i is not None]
         spikes = [i for i in items if isinstance(i, ast.SpikeTimes)]
-        currents = [i for i in items if not isinstance(i, ast.SpikeTimes)]
+        others = [i for i in items if not isinstance(i, ast.SpikeTimes)]
         for extra in spikes[1:]:
             self.c.fail("a second 'spikes at' line for the same cell", extra.span,
                         expected="all spike times of a cell on one line",
                         hint=f"merge it into the line {spikes[0].span.line}")
-        if spikes and currents:
-            self.c.fail(f"cell {str(cell)!r} gets both spike times and current pulses",
-                        currents[0].span,
-                        expected="either 'spikes at ...' or current pulses and trains",
-                        hint="explicit spike times replace the cell's membrane, so current "
-                             "pulses would have no effect; drop one of them")
+        if spikes and others:
+            what = _STIMULUS_WORDS[type(others[0])]
+            self.c.fail(f"cell {str(cell)!r} gets both spike times and {what}", others[0].span,
+                        expected="either 'spikes at ...' alone or other stimuli",
+                        hint=f"explicit spike times replace the cell's membrane, so {what} "
+                             "would have no effect; drop one of them")
         return ast.Stimulate(cell=str(cell), items=tuple(items), span=self._span(meta))
 
     # --- result collectors ---------------------------------------------------------------
@@ -1147,6 +1568,10 @@ class _Lowering(Transformer):
                                 expected=("a cell selected in 'cells:': " + ", ".join(selected))
                                 if selected else "a cell selected in 'cells:'",
                                 hint=suggest(ref.name, selected))
+        self._check_drives(recordings, stimuli)
+        sweeps = found.get("sweeps")
+        if sweeps is not None and self.sweep_count_ok:
+            self._check_families(sweeps, stimuli)
         names = [x.name for x in scans]
         used = {ref.name for ref in self.scan_uses}
         for ref in self.scan_uses:
@@ -1179,6 +1604,69 @@ class _Lowering(Transformer):
                             measures=tuple(measures), scans=tuple(scans),
                             file=self.file, span=title.span,
                             circuit_span=circuit.path_span)
+
+    def _check_drives(self, recordings: list[ast.Recording], stimuli: list[ast.Stimulate]) -> None:
+        """Amplitudes must fit the recording mode: currents in current clamp (and on cells
+        without a record line), voltages in voltage clamp; a spike source cannot be clamped."""
+        modes = {r.cell: r for r in recordings}
+        for block in stimuli:
+            if block.cell in self.failed_records:
+                continue
+            rec = modes.get(block.cell)
+            clamped = rec is not None and rec.mode == "voltage clamp"
+            for item in block.items:
+                if clamped and isinstance(item, ast.SpikeTimes):
+                    self.c.fail(f"cell {block.cell!r} is voltage-clamped (line {rec.span.line}), "
+                                "but 'spikes at' makes it a spike source with no membrane",
+                                item.span, expected="stimuli that act on a membrane",
+                                hint=f"drop 'spikes at', or use 'record {block.cell}: off'")
+                    break
+                drive = _drive_of(item)
+                if drive is None:
+                    continue
+                dimension, q = drive
+                if clamped and dimension == "current":
+                    if isinstance(item, (ast.Pulse, ast.Train)):
+                        hint = (f"'{type(item).__name__.lower()}' injects current; for a command "
+                                "step write 'step A for W at T' with A in mV, or record "
+                                f"{block.cell!r} in current clamp")
+                    else:
+                        hint = (f"give the amplitude in mV (a step from the holding potential), "
+                                f"or record {block.cell!r} in current clamp")
+                    self.c.fail("voltage clamp on a cell that is also current-injected: "
+                                f"{block.cell!r} is clamped at line {rec.span.line} and gets "
+                                f"{_STIMULUS_WORDS[type(item)]} of {q}", q.span,
+                                expected="a voltage: on a voltage-clamped cell an amplitude is "
+                                         "a command step from the holding potential",
+                                hint=hint)
+                    break
+                if not clamped and dimension == "voltage":
+                    kind = _STIMULUS_WORDS[type(item)].removeprefix("a ")
+                    if rec is None:
+                        where = f"{block.cell!r} has no record line, so it is current-clamped"
+                        hint = f"add 'record {block.cell}: voltage clamp, holding -70 mV'"
+                    else:
+                        where = f"{block.cell!r} is recorded {rec.mode!r} (line {rec.span.line})"
+                        hint = (f"change line {rec.span.line} to 'record {block.cell}: voltage "
+                                "clamp, holding -70 mV', or give the amplitude as a current")
+                    self.c.fail(f"a voltage {kind} needs 'record {block.cell}: voltage clamp'",
+                                q.span, expected=f"a current, as {where}", hint=hint)
+                    break
+
+    def _check_families(self, sweeps: ast.Sweeps, stimuli: list[ast.Stimulate]) -> None:
+        """A step family gives one amplitude per sweep, so it needs exactly that many sweeps."""
+        for block in stimuli:
+            for item in block.items:
+                if not isinstance(item, ast.StepFamily):
+                    continue
+                n = len(item.values) or item.count
+                if n is None or n == sweeps.count:
+                    continue
+                self.c.fail(f"the step family has {n} amplitudes but the protocol runs "
+                            f"{sweeps.count} sweeps", item.span,
+                            expected=f"{sweeps.count} amplitudes, one per sweep",
+                            hint=f"set 'sweeps {n} every {_shown(sweeps.interval)}' (line "
+                                 f"{sweeps.span.line}), or change the family")
 
     @staticmethod
     def _statement_key(statement) -> tuple[str | None, str | None, Span | None]:
