@@ -138,6 +138,73 @@ def check_measures(p: ast.Protocol, circuit, out: Collector) -> None:
                     out.diagnostics.extend(exc.diagnostics)
 
 
+def check_inputs(p: ast.Protocol, circuit, out: Collector) -> None:
+    """Poisson inputs name a receptor of the circuit; activated classes exist and reach the cell."""
+    classes = {pick.name: pick.cell_class for pick in p.cells.picks}
+    for block in p.stimuli:
+        for item in block.items:
+            if isinstance(item, ast.PoissonInput) and item.receptor is not None \
+                    and item.receptor not in circuit.receptors:
+                out.fail(f"unknown receptor {item.receptor!r}", item.receptor_span or item.span,
+                         expected="a receptor of the circuit: " + ", ".join(sorted(circuit.receptors)),
+                         hint=suggest(item.receptor, circuit.receptors))
+            elif isinstance(item, ast.Activate):
+                if item.cell_class not in circuit.classes:
+                    out.fail(f"unknown cell class {item.cell_class!r}", item.class_span or item.span,
+                             expected=f"a cell class of the circuit: {_class_list(circuit)}",
+                             hint=suggest(item.cell_class, circuit.classes))
+                elif classes.get(block.cell) in circuit.classes and \
+                        find_pathway(circuit, item.cell_class, classes[block.cell]) is None:
+                    out.fail(f"the circuit has no pathway {item.cell_class} -> {classes[block.cell]}, so activating "
+                             f"{item.cell_class} cells reaches no synapse on {block.cell!r}", item.class_span or item.span,
+                             expected="a class with a pathway onto this cell: " + ", ".join(
+                                 sorted(pw.pre for pw in circuit.pathways.values() if pw.post == classes[block.cell])))
+
+
+def _steps_of(p: ast.Protocol, cell: str) -> list:
+    for block in p.stimuli:
+        if block.cell == cell:
+            return [i for i in block.items if isinstance(i, (ast.Step, ast.StepFamily))]
+    return []
+
+
+def _amplitudes(item) -> list[float]:
+    if isinstance(item, ast.StepFamily):
+        return [q.si for q in item.values]
+    return [item.amplitude.si] if hasattr(item.amplitude, "si") else []
+
+
+def check_cell_collectors(p: ast.Protocol, circuit, out: Collector) -> None:
+    """passive needs a hyperpolarising step, firing a depolarising one, fi a family of steps."""
+    rec = {r.cell: r for r in p.recordings}
+    for block in p.measures:
+        for item in block.items:
+            need = COLLECTORS.get(item.collector, {}).get("needs_step")
+            if need is None:
+                continue
+            r = rec.get(block.cell)
+            if r is not None and r.mode != "current clamp":
+                out.fail(f"`{item.collector}` reads current-clamp step responses; {block.cell!r} is in {r.mode}",
+                         item.span, hint=f"use `record {block.cell}: current clamp`")
+                continue
+            steps = _steps_of(p, block.cell)
+            amps = [a for s in steps for a in _amplitudes(s)]
+            example = f"`steps of -50 pA to 300 pA by 50 pA for 500 ms at 100 ms` in `stimulate {block.cell}:`"
+            if need == "family" and not any(isinstance(s, ast.StepFamily) for s in steps):
+                out.fail(f"`{item.collector}` needs a family of current steps on {block.cell!r}", item.span,
+                         expected="a `steps of ...` line", hint=f"add {example}")
+            elif need == "hyperpolarising" and not any(a < 0 for a in amps):
+                out.fail(f"`{item.collector}` needs a hyperpolarising current step on {block.cell!r}", item.span,
+                         expected="a `step` or `steps of` with a negative current",
+                         hint=f"add `step -50 pA for 500 ms at 100 ms`, or {example}")
+            elif need == "depolarising" and not any(a > 0 for a in amps):
+                out.fail(f"`{item.collector}` needs a depolarising current step on {block.cell!r}", item.span,
+                         expected="a `step` or `steps of` with a positive current", hint=f"add {example}")
+            if len(steps) > 1:
+                out.fail(f"`{item.collector}` reads one step per sweep, but {block.cell!r} has {len(steps)} step lines",
+                         steps[1].span, hint="keep one `step` or `steps of` line for a characterised cell")
+
+
 CHECKS = (
     check_classes,
     check_connectivity_constraints,
@@ -145,6 +212,8 @@ CHECKS = (
     check_stimuli,
     check_recordings,
     check_measures,
+    check_inputs,
+    check_cell_collectors,
 )
 
 
@@ -157,5 +226,9 @@ def run_checks(protocol: ast.Protocol, circuit) -> Collector:
     out = Collector()
     for check in CHECKS:
         check(protocol, circuit, out)
+    unique = {}
+    for d in out.diagnostics:
+        unique.setdefault((d.span, d.message), d)
+    out.diagnostics = list(unique.values())
     out.raise_if_any()
     return out
