@@ -4,7 +4,8 @@ Every random draw comes from its own stream, derived from the seed and the names
 the classes or pathways involved (``numpy.random.SeedSequence`` with a spawn key), so
 adding or removing a pathway never changes positions, cell parameters or the
 connections of other pathways. Within a stream the draw order is fixed: positions
-x, y, z; parameters in the order of ``schema.ADEX_PARAMETERS``; connections row by
+x, y, z; parameters in the order of the class model's table (``schema.ADEX_PARAMETERS``,
+``schema.HH_CORTICAL_PARAMETERS``, ``schema.HH_SQUID_PARAMETERS``); connections row by
 row (pre ascending, then post ascending); then, for the connections that exist in that
 order, n_sites, site_conductance, U, D, F.
 
@@ -19,11 +20,15 @@ import zlib
 import numpy as np
 
 from ..language.errors import Collector, ProtocolError, error, suggest
-from .schema import ADEX_PARAMETERS, Circuit, Dist, IntDist, Pathway
+from .schema import ADEX_PARAMETERS, MODEL_PARAMETERS, Circuit, Dist, IntDist, Pathway
 
-__all__ = ["ENGINE_PARAMETERS", "Instance", "instantiate"]
+__all__ = ["ENGINE_PARAMETERS", "MODEL_ENGINE_PARAMETERS", "Instance", "instantiate"]
 
+#: Engine names of the adex parameters (the model of every class in older circuit files).
 ENGINE_PARAMETERS: tuple[str, ...] = tuple(v[0] for v in ADEX_PARAMETERS.values())
+#: Engine names of each model's parameters, in draw order.
+MODEL_ENGINE_PARAMETERS: dict[str, tuple[str, ...]] = {
+    model: tuple(v[0] for v in table.values()) for model, table in MODEL_PARAMETERS.items()}
 CONNECTION_FIELDS: tuple[str, ...] = ("n_sites", "site_conductance", "U", "D", "F", "delay")
 
 # stream numbers of the derived seeds (never reuse one for another purpose)
@@ -132,12 +137,20 @@ class Instance:
     def params_of(self, ids: np.ndarray | int) -> dict[str, np.ndarray]:
         """Model parameters of cells ``ids`` under the engine's names (SI units).
 
-        Keys: C (F), gL (S), EL (V), VT (V), DeltaT (V), a (S), tau_w (s), b (A),
-        Vr (V), Vcut (V), t_ref (s). After a spike (V > Vcut) V is set to Vr and
-        held there for t_ref while w keeps evolving; w jumps by b.
+        The keys are those of the models of the cells' classes (NaN where a cell's model
+        lacks one). adex: C (F), gL (S), EL (V), VT (V), DeltaT (V), a (S), tau_w (s),
+        b (A), Vr (V), Vcut (V), t_ref (s); after a spike (V > Vcut) V is set to Vr and
+        held there for t_ref while w keeps evolving; w jumps by b. hh_cortical and
+        hh_squid: see ``MODEL_ENGINE_PARAMETERS`` (geometry in m, values per membrane
+        area in S/m^2 and F/m^2, potentials in V, tau_max in s).
         """
         idx = np.asarray(ids)
-        return {k: v[idx].copy() for k, v in self._params.items()}
+        models = [self.circuit.classes[self.class_names[k]].model
+                  for k in np.unique(self.class_index[idx])]
+        keys: list[str] = []
+        for model in dict.fromkeys(models):
+            keys += [k for k in MODEL_ENGINE_PARAMETERS[model] if k not in keys]
+        return {k: self._params[k][idx].copy() for k in keys}
 
     # -- connections -----------------------------------------------------------------
     def _lookup(self, pre_ids, post_ids) -> tuple[np.ndarray, np.ndarray]:
@@ -233,7 +246,10 @@ def instantiate(circuit: Circuit, seed: int) -> Instance:
     n = sum(c.count for c in classes)
     class_index = np.repeat(np.arange(len(classes)), [c.count for c in classes])
     positions = np.empty((n, 3))
-    params = {k: np.empty(n) for k in ENGINE_PARAMETERS}
+    names: list[str] = []
+    for model in dict.fromkeys(c.model for c in classes):
+        names += [k for k in MODEL_ENGINE_PARAMETERS[model] if k not in names]
+    params = {k: np.full(n, np.nan) for k in names}
     problems = Collector()
     start = 0
     for cls in classes:
@@ -244,13 +260,14 @@ def instantiate(circuit: Circuit, seed: int) -> Instance:
         positions[ids, 1] = rng.uniform(0.0, circuit.extent[1], cls.count)
         positions[ids, 2] = rng.uniform(layer.top, layer.bottom, cls.count)
         rng = _stream(seed, _PARAMETERS, cls.name)
-        for yaml_name, (engine, _, _) in ADEX_PARAMETERS.items():
+        for yaml_name, (engine, _, _) in MODEL_PARAMETERS[cls.model].items():
             try:
                 params[engine][ids] = _draw(cls.parameters[engine], rng, cls.count,
                                             f"classes.{cls.name}.parameters.{yaml_name}")
             except ProtocolError as exc:
                 problems.diagnostics.extend(exc.diagnostics)
-        _check_cells(cls.name, {k: v[ids] for k, v in params.items()}, cls, problems)
+        if cls.model == "adex":
+            _check_cells(cls.name, {k: v[ids] for k, v in params.items()}, cls, problems)
         start += cls.count
     problems.raise_if_any()
 

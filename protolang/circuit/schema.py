@@ -17,7 +17,7 @@ Layout (keys in the order the reader checks them)::
       y: 400 um
       layers:                        # depth measured down from the slab's top face
         upper: {top: 0 um, bottom: 500 um}
-    bath: {calcium: 2.0 mM, magnesium: 1.0 mM}
+    bath: {calcium: 2.0 mM, magnesium: 1.0 mM}   # optional temperature, default 34 degC
     release_law:                     # Hill law of release against calcium
       reference_calcium: 2.0 mM      # the calcium at which pathway U values hold
       half_activation: 1.2 mM
@@ -25,6 +25,8 @@ Layout (keys in the order the reader checks them)::
     receptors:
       AMPA: {rise: 0.3 ms, decay: 3 ms, reversal: 0 mV}
       NMDA: {rise: 3 ms, decay: 80 ms, reversal: 0 mV, magnesium_block: true}
+      GABA_A: {rise: 0.5 ms, decay: 8 ms, reversal: -75 mV,
+               temperature: {reference: 34 degC, q10: 2.5}}   # optional, see below
     classes:
       pyramidal_upper:
         layer: upper
@@ -33,6 +35,14 @@ Layout (keys in the order the reader checks them)::
         parameters:                  # each a value or a distribution
           C: {mean: 85 pF, sd: 3.4 pF}
           refractory: 2 ms
+      regular_hh:
+        layer: upper
+        count: 40
+        model: hh_cortical             # or hh_squid; parameters per membrane area
+        parameters:
+          diameter: 96 um
+          g_leak: {mean: 0.1 mS/cm2, sd: 0.005 mS/cm2}
+        temperature: {reference: 36 degC, q10_Na_Kd: 3, q10_M: 2.3}   # optional
     pathways:
       - pre: pyramidal_upper
         post: pyramidal_upper
@@ -47,6 +57,25 @@ A distribution is ``{mean, sd}`` (normal; ``distribution: normal`` may be writte
 ``{median, sigma, distribution: lognormal}`` (sigma in natural-log units). Normal draws
 are truncated (redrawn) so that a value keeps the sign of its mean and stays inside the
 range its key allows (U in [0, 1], times positive...).
+
+Cell models: ``adex`` (adaptive exponential integrate-and-fire, absolute values such as
+``C: 85 pF``), ``hh_cortical`` (single-compartment Hodgkin-Huxley-type model after
+Pospischil et al. 2008, Biol Cybern 99:427) and ``hh_squid`` (Hodgkin and Huxley 1952,
+J Physiol 117:500, modern sign convention, rest near -65 mV). The two Hodgkin-Huxley
+models take values per membrane area (``mS/cm2``, ``uF/cm2``) on a cylinder of
+``diameter`` and ``length`` (area pi*d*L, no end caps); see :data:`HH_CORTICAL_PARAMETERS`
+and :data:`HH_SQUID_PARAMETERS` for the keys and :data:`HH_DEFAULTS` for the optional ones.
+
+Temperature: the bath temperature (``bath.temperature``, default 34 degC) scales rate
+constants by ``q10 ** ((T - reference) / 10)``. A Hodgkin-Huxley class and a receptor may
+carry ``temperature: {reference: ..., q10...: ...}``; a Q10 without its ``reference`` is an
+error, since the factor means nothing without the temperature it is counted from.
+Defaults (see :data:`TEMPERATURE_DEFAULTS`): hh_cortical reference 36 degC with Q10 3 for
+the Na/K gates, 2.3 for I_M (the values in the model authors' public code), 3 for I_T
+inactivation and 1 (no scaling) for I_L; hh_squid reference 6.3 degC with Q10 3 (Hodgkin
+and Huxley 1952); receptors: their kinetics hold at the circuit's bath temperature, Q10
+2.5 for rise and decay (common practice puts receptor kinetics at 2-3, no single source).
+AdEx classes take no temperature section: their fitted parameters hold as given.
 """
 
 from __future__ import annotations
@@ -66,6 +95,11 @@ from ..language.units import DIMENSIONS, DISPLAY, UNITS, Quantity, parse_quantit
 
 __all__ = [
     "ADEX_PARAMETERS",
+    "HH_CORTICAL_PARAMETERS",
+    "HH_DEFAULTS",
+    "HH_SQUID_PARAMETERS",
+    "MODEL_PARAMETERS",
+    "TEMPERATURE_DEFAULTS",
     "Bath",
     "CellClass",
     "Circuit",
@@ -75,6 +109,7 @@ __all__ = [
     "Pathway",
     "ReleaseLaw",
     "Receptor",
+    "Temperature",
     "load_circuit",
 ]
 
@@ -94,7 +129,77 @@ ADEX_PARAMETERS: dict[str, tuple[str, str, str]] = {
     "refractory": ("t_ref", "time", "nonnegative"),
 }
 
-MODELS = ("adex",)
+# Hodgkin-Huxley-type models: values per membrane area on a cylinder (area pi*d*L).
+# hh_cortical after Pospischil et al. 2008 (Biol Cybern 99:427): I_Na, I_Kd (Traub-Miles form
+# with threshold shift V_T), I_M (slow K+, peak time constant tau_max), I_L (high-threshold
+# Ca2+, IB cells), I_T (low-threshold Ca2+, LTS cells) and a leak. Calcium currents use a fixed
+# E_Ca; intracellular calcium is not tracked (see HH_DEFAULTS).
+HH_CORTICAL_PARAMETERS: dict[str, tuple[str, str, str]] = {
+    "diameter": ("diam", "length", "positive"),
+    "length": ("length", "length", "positive"),
+    "c_m": ("c_m", "specific_capacitance", "positive"),
+    "g_leak": ("g_leak", "specific_conductance", "positive"),
+    "E_leak": ("EL", "voltage", "signed"),
+    "g_Na": ("gNa", "specific_conductance", "nonnegative"),
+    "g_Kd": ("gKd", "specific_conductance", "nonnegative"),
+    "g_M": ("gM", "specific_conductance", "nonnegative"),
+    "tau_max": ("tau_max", "time", "positive"),
+    "g_CaL": ("gCaL", "specific_conductance", "nonnegative"),
+    "g_CaT": ("gCaT", "specific_conductance", "nonnegative"),
+    "V_T": ("VT", "voltage", "signed"),
+    "E_Na": ("ENa", "voltage", "signed"),
+    "E_K": ("EK", "voltage", "signed"),
+    "E_Ca": ("ECa", "voltage", "signed"),
+}
+
+# hh_squid: Hodgkin and Huxley 1952 (J Physiol 117:500), V measured from the outside as usual
+# today (rest near -65 mV rather than 0).
+HH_SQUID_PARAMETERS: dict[str, tuple[str, str, str]] = {
+    "diameter": ("diam", "length", "positive"),
+    "length": ("length", "length", "positive"),
+    "c_m": ("c_m", "specific_capacitance", "positive"),
+    "g_leak": ("g_leak", "specific_conductance", "positive"),
+    "E_leak": ("EL", "voltage", "signed"),
+    "g_Na": ("gNa", "specific_conductance", "nonnegative"),
+    "g_K": ("gK", "specific_conductance", "nonnegative"),
+    "E_Na": ("ENa", "voltage", "signed"),
+    "E_K": ("EK", "voltage", "signed"),
+}
+
+# Optional keys and their values when left out (SI). E_Ca = 120 mV is the Nernst potential of 2 mM
+# outside and 240 nM inside at 36 degC, the resting values of the authors' code; with a fixed
+# E_Ca the calcium currents do not feel calcium accumulation during bursts.
+HH_DEFAULTS: dict[str, dict[str, float]] = {
+    "hh_cortical": {"c_m": 1e-2, "g_M": 0.0, "tau_max": 1.0, "g_CaL": 0.0, "g_CaT": 0.0,
+                    "E_Ca": 0.120},
+    "hh_squid": {"c_m": 1e-2},
+}
+
+MODEL_PARAMETERS: dict[str, dict[str, tuple[str, str, str]]] = {
+    "adex": ADEX_PARAMETERS,
+    "hh_cortical": HH_CORTICAL_PARAMETERS,
+    "hh_squid": HH_SQUID_PARAMETERS,
+}
+MODELS = tuple(MODEL_PARAMETERS)
+_MODEL_WORDS = {
+    "adex": "adaptive exponential integrate-and-fire",
+    "hh_cortical": "Hodgkin-Huxley-type cortical cell after Pospischil et al. 2008",
+    "hh_squid": "Hodgkin and Huxley 1952 squid axon",
+}
+
+# Reference temperature (K) and Q10 values per rate group when a class says nothing.
+# hh_cortical: the model authors' code scales Na/K rates by 3^((T - 36)/10) and I_M by
+# 2.3^((T - 36)/10); I_T inactivation has Q10 3 (its kinetics, measured at 24 degC, are
+# written here at 36 degC); I_L is not scaled there. hh_squid: phi = 3^((T - 6.3)/10).
+TEMPERATURE_DEFAULTS: dict[str, tuple[float, dict[str, float]]] = {
+    "hh_cortical": (309.15, {"q10_Na_Kd": 3.0, "q10_M": 2.3, "q10_CaT": 3.0, "q10_CaL": 1.0}),
+    "hh_squid": (279.45, {"q10": 3.0}),
+}
+# Receptor rise and decay: common practice, no single source (Q10 of 2-3 are usual).
+RECEPTOR_Q10 = 2.5
+DEFAULT_BATH_TEMPERATURE = 307.15   # K, 34 degC: near-physiological slice recordings
+# bath and reference temperatures a slice protocol can mean (0 to 45 degC)
+_TEMPERATURE_RANGE = (273.15, 318.15)
 DEFAULT_HILL = 4.0  # cooperativity of calcium in release: Dodge and Rahamimoff 1967 J Physiol
 # the shape of "2.5 mM" (as units.parse_quantity reads it), to name unknown units early
 _QUANTITY = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*([A-Za-z%/]*)\s*$")
@@ -169,11 +274,30 @@ class Layer:
 
 @dataclass(frozen=True, slots=True)
 class Bath:
-    """Default extracellular concentrations (mol/m^3 = mM)."""
+    """Default extracellular concentrations (mol/m^3 = mM) and bath temperature (K)."""
 
     calcium: float
     magnesium: float
     span: Span | None = field(default=None, compare=False, repr=False)
+    temperature: float = DEFAULT_BATH_TEMPERATURE
+
+
+@dataclass(frozen=True, slots=True)
+class Temperature:
+    """How rate constants follow temperature: each group's rates are multiplied by
+    ``q10[group] ** ((T - reference) / 10)`` (reference and T in kelvin).
+
+    ``given`` is False when the defaults apply because the file says nothing.
+    """
+
+    reference: float
+    q10: dict[str, float]
+    given: bool = True
+    span: Span | None = field(default=None, compare=False, repr=False)
+
+    def factor(self, group: str, temperature: float) -> float:
+        """Rate factor of ``group`` (a q10 key) at ``temperature`` (K)."""
+        return float(self.q10[group] ** ((temperature - self.reference) / 10.0))
 
 
 @dataclass(frozen=True, slots=True)
@@ -211,14 +335,18 @@ class Receptor:
     reversal: float
     mg_block: bool = False   # Jahr-Stevens magnesium block (file key magnesium_block)
     span: Span | None = field(default=None, compare=False, repr=False)
+    temperature: Temperature | None = None   # None only for receptors built by hand: no scaling
 
 
 @dataclass(frozen=True, slots=True)
 class CellClass:
     """A cell class: where its cells sit, how many, and the model parameter laws.
 
-    ``parameters`` maps the engine's names (C, gL, EL, VT, DeltaT, a, tau_w, b, Vr,
-    Vcut, t_ref) to :class:`Dist` in SI units.
+    ``parameters`` maps the engine's names to :class:`Dist` in SI units: for adex C, gL,
+    EL, VT, DeltaT, a, tau_w, b, Vr, Vcut, t_ref; for the Hodgkin-Huxley models the
+    engine names of :data:`HH_CORTICAL_PARAMETERS` / :data:`HH_SQUID_PARAMETERS` (every
+    optional key filled in). ``temperature`` is None for adex and the class's (or the
+    model's default) :class:`Temperature` for the Hodgkin-Huxley models.
     """
 
     name: str
@@ -228,6 +356,7 @@ class CellClass:
     parameters: dict[str, Dist]
     density_per_mm3: float | None = None
     span: Span | None = field(default=None, compare=False, repr=False)
+    temperature: Temperature | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -739,7 +868,8 @@ class _Reader:
         space = self.read_space(top["space"][1]) if "space" in top else None
         bath = self.read_bath(top["bath"][1]) if "bath" in top else None
         release = self.read_release_law(top["release_law"][1]) if "release_law" in top else None
-        receptors, receptor_names = self.read_receptors(top["receptors"][1]) \
+        bath_temperature = bath.temperature if bath is not None else DEFAULT_BATH_TEMPERATURE
+        receptors, receptor_names = self.read_receptors(top["receptors"][1], bath_temperature) \
             if "receptors" in top else ({}, [])
         classes, class_names = self.read_classes(top["classes"][1], space) \
             if "classes" in top else ({}, [])
@@ -798,7 +928,7 @@ class _Reader:
         return (extent[0], extent[1]), layers
 
     def read_bath(self, node: yaml.Node) -> Bath | None:
-        keys = self.mapping(node, "bath", ("calcium", "magnesium"))
+        keys = self.mapping(node, "bath", ("calcium", "magnesium"), ("temperature",))
         if keys is None:
             return None
         vals = {}
@@ -807,9 +937,67 @@ class _Reader:
                 self.record(f"bath.{ion}", *keys[ion])
                 vals[ion] = self.bounded(keys[ion][1], f"bath.{ion}", "concentration",
                                          "nonnegative")
-        if len(vals) < 2 or None in vals.values():
+        temperature = DEFAULT_BATH_TEMPERATURE
+        if "temperature" in keys:
+            self.record("bath.temperature", *keys["temperature"])
+            temperature = self.temperature_value(keys["temperature"][1], "bath.temperature")
+        if len(vals) < 2 or None in vals.values() or temperature is None:
             return None
-        return Bath(vals["calcium"], vals["magnesium"], self.span(node))
+        return Bath(vals["calcium"], vals["magnesium"], self.span(node), temperature)
+
+    def temperature_value(self, node: yaml.Node, path: str) -> float | None:
+        """A temperature in kelvin, within the range a slice protocol can mean (0-45 degC)."""
+        value = self.quantity(node, path, "temperature")
+        if value is None:
+            return None
+        low, high = _TEMPERATURE_RANGE
+        if not low <= value <= high:
+            self.fail(path, f"temperature {_show(value, 'temperature')} is outside 0 to 45 degC",
+                      node, expected="a temperature such as 34 degC",
+                      hint="write temperatures in degC, e.g. '34 degC'")
+            return None
+        return value
+
+    def read_temperature(self, node: yaml.Node, path: str, reference: float,
+                         q10_defaults: dict[str, float]) -> Temperature | None:
+        """A ``temperature`` mapping: ``reference`` and Q10 values (defaults where left out).
+
+        A Q10 without ``reference`` is refused: it would silently be counted from the
+        default reference temperature.
+        """
+        keys = self.mapping(node, path, (), ("reference",) + tuple(q10_defaults),
+                            "a temperature mapping")
+        if keys is None:
+            return None
+        for key, (kn, vn) in keys.items():
+            self.record(f"{path}.{key}", kn, vn)
+        q10 = dict(q10_defaults)
+        ok = True
+        for key in q10_defaults:
+            if key in keys:
+                value = self.bounded(keys[key][1], f"{path}.{key}", "number", "positive")
+                if value is None:
+                    ok = False
+                else:
+                    q10[key] = value
+        given = [k for k in q10_defaults if k in keys]
+        if "reference" in keys:
+            value = self.temperature_value(keys["reference"][1], f"{path}.reference")
+            if value is None:
+                return None
+            reference = value
+        elif given:
+            first = keys[given[0]][0]
+            self.fail(f"{path}.{given[0]}", f"{given[0]} is given without the reference "
+                      f"temperature it is counted from", first,
+                      expected="a 'reference' temperature beside every Q10, e.g. "
+                               "{reference: 36 degC, " + f"{given[0]}: 3" + "}",
+                      hint=f"add 'reference: {_show(reference, 'temperature')}' if the rates "
+                           f"hold at that temperature")
+            return None
+        if not ok:
+            return None
+        return Temperature(reference, q10, True, self.span(node))
 
     def read_release_law(self, node: yaml.Node) -> ReleaseLaw | None:
         keys = self.mapping(node, "release_law", ("reference_calcium", "half_activation"),
@@ -828,16 +1016,25 @@ class _Reader:
         return ReleaseLaw(vals["reference_calcium"], vals["half_activation"],
                           vals["hill_coefficient"], self.span(node))
 
-    def read_receptors(self, node: yaml.Node) -> tuple[dict[str, Receptor], list[str]]:
+    def read_receptors(self, node: yaml.Node,
+                       bath_temperature: float) -> tuple[dict[str, Receptor], list[str]]:
         entries = self.named_entries(node, "receptors", "receptor")
         out: dict[str, Receptor] = {}
         names = [e[0] for e in entries or []]
         for name, k, v in entries or []:
             path = f"receptors.{name}"
             self.record(path, k, v)
-            keys = self.mapping(v, path, ("rise", "decay", "reversal"), ("magnesium_block",))
+            keys = self.mapping(v, path, ("rise", "decay", "reversal"),
+                                ("magnesium_block", "temperature"))
             if keys is None:
                 continue
+            # without a temperature section the kinetics hold at the circuit's own bath
+            temperature: Temperature | None = Temperature(bath_temperature, {"q10": RECEPTOR_Q10},
+                                                          False)
+            if "temperature" in keys:
+                self.record(f"{path}.temperature", *keys["temperature"])
+                temperature = self.read_temperature(keys["temperature"][1], f"{path}.temperature",
+                                                    bath_temperature, {"q10": RECEPTOR_Q10})
             vals: dict[str, Any] = {}
             for key, dim, rule in (("rise", "time", "positive"), ("decay", "time", "positive"),
                                    ("reversal", "voltage", "signed")):
@@ -848,7 +1045,7 @@ class _Reader:
             if "magnesium_block" in keys:
                 self.record(f"{path}.magnesium_block", *keys["magnesium_block"])
                 block = self.flag(keys["magnesium_block"][1], f"{path}.magnesium_block")
-            if len(vals) < 3 or None in vals.values() or block is None:
+            if len(vals) < 3 or None in vals.values() or block is None or temperature is None:
                 continue
             if vals["decay"] <= vals["rise"]:
                 self.fail(f"{path}.decay", f"decay ({_show(vals['decay'], 'time')}) must be "
@@ -856,7 +1053,7 @@ class _Reader:
                           expected="decay > rise (difference of exponentials)")
                 continue
             out[name] = Receptor(name, vals["rise"], vals["decay"], vals["reversal"], block,
-                                 self.span(k))
+                                 self.span(k), temperature)
         return out, names
 
     def read_classes(self, node: yaml.Node, space: tuple | None) -> tuple[dict, list[str]]:
@@ -875,7 +1072,7 @@ class _Reader:
         path = f"classes.{name}"
         self.record(path, k, v)
         keys = self.mapping(v, path, ("layer", "model", "parameters"),
-                            ("count", "density_per_mm3", "note"))
+                            ("count", "density_per_mm3", "note", "temperature"))
         if keys is None:
             return None
         for key, (kn, vn) in keys.items():
@@ -894,18 +1091,36 @@ class _Reader:
         model = self.text(keys["model"][1], f"{path}.model") if "model" in keys else None
         if model is not None and model not in MODELS:
             self.fail(f"{path}.model", f"unknown cell model {model!r}", keys["model"][1],
-                      expected="one of " + ", ".join(MODELS) +
-                               " (adaptive exponential integrate-and-fire)",
+                      expected="one of " + "; ".join(f"{m} ({_MODEL_WORDS[m]})" for m in MODELS),
                       hint=suggest(model, MODELS))
             model = None
-        params = self.read_adex(keys["parameters"], f"{path}.parameters") \
-            if "parameters" in keys and model == "adex" else None
+        params = None
+        if "parameters" in keys and model == "adex":
+            params = self.read_adex(keys["parameters"], f"{path}.parameters")
+        elif "parameters" in keys and model is not None:
+            params = self.read_hh(keys["parameters"], f"{path}.parameters", model)
+        temperature: Temperature | None = None
+        temperature_ok = True
+        if model is not None and model != "adex":
+            reference, q10 = TEMPERATURE_DEFAULTS[model]
+            temperature = Temperature(reference, dict(q10), False)
+            if "temperature" in keys:
+                temperature = self.read_temperature(keys["temperature"][1], f"{path}.temperature",
+                                                    reference, q10)
+                temperature_ok = temperature is not None
+        elif model == "adex" and "temperature" in keys:
+            self.fail(f"{path}.temperature", "adex cells take no temperature section",
+                      keys["temperature"][0],
+                      expected="a temperature section only for hh_cortical and hh_squid classes",
+                      hint="remove it: the fitted AdEx parameters hold at the temperature they "
+                           "were fitted at")
+            temperature_ok = False
         density = None
         if "density_per_mm3" in keys and count is not None:
             density = count[1]
-        if None in (layer, model, params, count):
+        if None in (layer, model, params, count) or not temperature_ok:
             return None
-        return CellClass(name, layer, count[0], model, params, density, self.span(k))
+        return CellClass(name, layer, count[0], model, params, density, self.span(k), temperature)
 
     def read_count(self, path: str, keys: dict, layer: Layer | None, space: tuple | None,
                    node: yaml.Node) -> tuple[int, float | None] | None:
@@ -960,6 +1175,34 @@ class _Reader:
             self.fail(f"{path}.E_leak", f"E_leak ({_show(out['EL'].center, 'voltage')}) must lie "
                       f"below V_T ({_show(out['VT'].center, 'voltage')})", keys["E_leak"][1],
                       expected="a resting potential below the spike threshold")
+            return None
+        return out
+
+    def read_hh(self, entry: tuple, path: str, model: str) -> dict[str, Dist] | None:
+        """Parameters of a Hodgkin-Huxley class; optional keys take :data:`HH_DEFAULTS`."""
+        table = MODEL_PARAMETERS[model]
+        defaults = HH_DEFAULTS[model]
+        required = tuple(k for k in table if k not in defaults)
+        optional = tuple(k for k in table if k in defaults)
+        keys = self.mapping(entry[1], path, required, optional, "a mapping of parameters")
+        if keys is None:
+            return None
+        out: dict[str, Dist] = {}
+        for key, (engine, dim, rule) in table.items():
+            if key in keys:
+                d = self.dist(keys[key][0], keys[key][1], f"{path}.{key}", dim, rule)
+                if d is not None:
+                    out[engine] = d
+            elif key in defaults:
+                low, high, low_open, high_open = _rule_bounds(rule)
+                out[engine] = Dist("fixed", defaults[key], 0.0, low, high, low_open, high_open)
+        if len(out) < len(table):
+            return None
+        # the sodium reversal must lie above the potassium one, or no spike can form
+        if out["ENa"].center <= out["EK"].center:
+            self.fail(f"{path}.E_Na", f"E_Na ({_show(out['ENa'].center, 'voltage')}) must lie "
+                      f"above E_K ({_show(out['EK'].center, 'voltage')})", keys["E_Na"][1],
+                      expected="E_Na > E_K (e.g. 50 mV and -100 mV)")
             return None
         return out
 
@@ -1129,5 +1372,7 @@ def _rule_ok(value: float, rule: str) -> bool:
 def _show(value_si: float, dimension: str) -> str:
     if dimension == "number":
         return f"{value_si:g}"
+    if dimension == "temperature":   # kelvin inside, degC for people
+        return f"{value_si - 273.15:.4g} degC"
     unit = DISPLAY[dimension]
     return f"{value_si / UNITS[unit][1]:g} {unit}"

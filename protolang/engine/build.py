@@ -1,5 +1,12 @@
 """Network builder: takes a Plan and the brian2 module, hands out one explicit Brian2 Network of named objects with its monitors.
 
+Cell models: adaptive exponential integrate-and-fire (forward Euler, spike cut and reset) and
+the Hodgkin-Huxley-type models of :mod:`protolang.engine.models` (exponential Euler; a spike is
+counted when v rises above 0 mV, and the cell stays refractory while v > 0 mV, so each spike
+counts once). Temperature enters through the rate factors the plan puts in each role's
+parameters and through the receptor time constants the plan has already scaled: the engine
+applies no temperature scaling of its own.
+
 Object names follow protocol identifiers so diagnostics can cite the protocol:
 ``cell_<role>`` (NeuronGroup or SpikeGeneratorGroup), ``syn_<synapse>`` (Synapses),
 ``trace_<role>``, ``spikes_<role>``, ``release_<synapse>`` (monitors), ``stim_library``.
@@ -148,6 +155,7 @@ class Built:
     names: dict[tuple[str, str], str]
     cells: dict[str, Any] = field(default_factory=dict)              # role -> group
     adex_roles: list[str] = field(default_factory=list)
+    hh_roles: list[str] = field(default_factory=list)
     trace_monitors: dict[str, Any] = field(default_factory=dict)     # role -> StateMonitor
     spike_monitors: dict[str, Any] = field(default_factory=dict)     # role -> SpikeMonitor
     release_monitors: dict[str, tuple[Any, str]] = field(default_factory=dict)  # syn -> (mon, var)
@@ -192,6 +200,79 @@ def _check_adex(plan: Plan, role: RolePlan, name: str, fail: Collector) -> dict[
                       f"time constant is {fastest * 1e3:g} ms", span,
                       expected="a time step well below the membrane and adaptation time constants",
                       hint=f"use a time step of at most {fastest * 1e3 / 10:.3g} ms")
+    return p
+
+
+#: Spike detection of the Hodgkin-Huxley models: upward crossing of 0 mV, refractory above it.
+HH_SPIKE_THRESHOLD = "v > 0*mV"
+
+#: Time step above which Hodgkin-Huxley spikes are resolved too coarsely (a note, not an error).
+HH_COARSE_DT = 0.05e-3
+
+#: Name of the engine's (exp(x) - 1)/x in the Hodgkin-Huxley rate texts.
+EXPREL_NAME = "protolang_exprel"
+_exprel_function: Any = None
+
+
+def _numpy_exprel(x):
+    x = np.asarray(x, dtype=float)
+    small = np.abs(x) < 1e-6
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        return np.where(small, 1.0 + x / 2.0 + x * x / 6.0, np.expm1(x) / np.where(small, 1.0, x))
+
+
+def exprel_function(b2: Any) -> Any:
+    """A Brian2 Function for (exp(x) - 1)/x, exact at 0.
+
+    Brian2's own ``exprel`` checks units on every numpy call, which made it about nine
+    tenths of a Hodgkin-Huxley step on the numpy target; this one is a plain numpy
+    function there and a C function on the compiled targets.
+    """
+    global _exprel_function
+    if _exprel_function is None:
+        from brian2.codegen.generators.cpp_generator import CPPCodeGenerator
+        from brian2.codegen.generators.cython_generator import CythonCodeGenerator
+        from brian2.codegen.generators.numpy_generator import NumpyCodeGenerator
+
+        fn = b2.Function(_numpy_exprel, arg_units=[1], return_unit=1)
+        fn.implementations.add_implementation(NumpyCodeGenerator, code=_numpy_exprel)
+        fn.implementations.add_implementation(CythonCodeGenerator, name="_protolang_exprel", code=(
+            "cdef inline double _protolang_exprel(double x) nogil:\n"
+            "    if fabs(x) < 1e-16:\n"
+            "        return 1.0\n"
+            "    return expm1(x) / x\n"))
+        fn.implementations.add_implementation(CPPCodeGenerator, name="_protolang_exprel", code=(
+            "static inline double _protolang_exprel(double x)\n"
+            "{\n"
+            "    if (fabs(x) < 1e-16) return 1.0;\n"
+            "    return expm1(x)/x;\n"
+            "}\n"))
+        _exprel_function = fn
+    return _exprel_function
+
+
+def _check_hh(plan: Plan, role: RolePlan, name: str, fail: Collector,
+              notes: list[str]) -> dict[str, np.ndarray]:
+    needed = models.MODEL_PARAMS[role.model] + models.HH_RATE_FACTORS[role.model]
+    missing = [p for p in needed if p not in role.params]
+    if missing:
+        raise AssertionError(f"internal error: role {role.name!r} lacks {role.model} parameters {missing}")
+    p = {k: _per_repeat(plan, role.params[k], f"parameter {k} of role {role.name!r}") for k in needed}
+    span = span_of(plan, name, role.name)
+    positive = ("diam", "length", "c_m", "g_leak") + models.HH_RATE_FACTORS[role.model] + \
+        (("tau_max",) if role.model == "hh_cortical" else ())
+    for key in needed:
+        rule = p[key] > 0 if key in positive else (
+            p[key] >= 0 if key.startswith("g") else np.ones(p[key].shape, dtype=bool))
+        bad = ~(rule & np.isfinite(p[key]))
+        if bad.any():
+            text = "positive" if key in positive else ("zero or positive" if key.startswith("g") else "")
+            fail.fail(f"cell parameter {key} of role {role.name!r} is {p[key][bad][0]:g} "
+                      f"(repeat {int(np.flatnonzero(bad)[0])})", span,
+                      expected=f"a finite {text} value".replace("  ", " "))
+    if plan.dt > HH_COARSE_DT:
+        notes.append(f"role {role.name!r}: a time step of {plan.dt * 1e3:g} ms resolves "
+                     f"Hodgkin-Huxley spikes coarsely; {HH_COARSE_DT * 1e3:g} ms or less is usual")
     return p
 
 
@@ -284,6 +365,44 @@ def _stimulus_library(plan: Plan, layout: Layout) -> tuple[np.ndarray | None, di
     return values, role_column
 
 
+def _hh_group(b2: Any, plan: Plan, role: RolePlan, params: dict[str, np.ndarray], hold: np.ndarray,
+              terms: list, stim_expr: str | None, release_vars: list[str],
+              namespace: dict, events: dict, layout: Layout, name: str,
+              notes: list[str]) -> tuple[Any, np.ndarray]:
+    """A NeuronGroup of Hodgkin-Huxley cells, started at rest under their holding current."""
+    model = role.model
+    # leave out currents no repeat has: fewer state variables, same dynamics
+    channels = [ch for ch, g in models.hh_channels(model).items() if np.any(params[g] > 0)]
+    eqs = models.hh_equations(model, channels, terms, stim_expr, release_vars, exprel=EXPREL_NAME)
+    namespace = dict(namespace, **{EXPREL_NAME: exprel_function(b2)})
+    group = b2.NeuronGroup(layout.n_cells, eqs, threshold=HH_SPIKE_THRESHOLD,
+                           refractory=HH_SPIKE_THRESHOLD, method="exponential_euler",
+                           namespace=namespace, events=events or None, name=name)
+    if role.holding_potential is not None:
+        # the plan's holding current makes this potential a steady state (checked stable there)
+        v0 = np.full(plan.n_repeat, float(role.holding_potential))
+    else:
+        v0, found = models.hh_rest(model, params, hold)
+        if not found.all():
+            notes.append(f"role {role.name!r}: no resting state under the holding current in "
+                         f"{int((~found).sum())} repeat(s); started at E_leak")
+    stable = models.holding_is_stable(model, params, v0)
+    if not stable.all():
+        notes.append(f"role {role.name!r}: the resting state under the holding current is unstable "
+                     f"in {int((~stable).sum())} repeat(s): the cell fires or oscillates from the start")
+    area = models.membrane_area(params)
+    group.area_ = layout.expand(area)
+    for key in models.MODEL_PARAMS[model] + models.HH_RATE_FACTORS[model]:
+        if key in group.variables:
+            setattr(group, key + "_", layout.expand(params[key]))
+    group.v_ = layout.expand(v0)
+    gates = models.gate_steady_states(model, params, v0)
+    for gate in models.hh_gates(model):
+        if gate in group.variables:
+            setattr(group, gate + "_", layout.expand(gates[gate]))
+    return group, v0
+
+
 def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
                   progress: Callable[[str], None] | None = None) -> Built:
     """Build the Brian2 network of a plan (one network for all repeats and sweeps).
@@ -311,6 +430,7 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
         raise AssertionError("internal error: two roles share a name")
 
     adex_params: dict[str, dict[str, np.ndarray]] = {}
+    hh_params: dict[str, dict[str, np.ndarray]] = {}
     spike_sources: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     for role in plan.roles:
         name = names[("role", role.name)]
@@ -318,9 +438,13 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
             spike_sources[role.name] = _spike_source(plan, role, layout, name, fail, notes)
         elif role.model == "adex":
             adex_params[role.name] = _check_adex(plan, role, name, fail)
+        elif role.model in models.HH_MODELS:
+            hh_params[role.name] = _check_hh(plan, role, name, fail, notes)
         else:
             fail.fail(f"role {role.name!r} uses cell model {role.model!r}, which the engine cannot simulate",
-                      span_of(plan, name, role.name), expected="cell model 'adex'")
+                      span_of(plan, name, role.name),
+                      expected="cell model 'adex', " + ", ".join(repr(m) for m in models.HH_MODELS))
+    membranes = [r.name for r in plan.roles if r.name in adex_params or r.name in hh_params]
     syn_params: dict[str, dict[str, np.ndarray]] = {}
     for syn in plan.synapses:
         name = names[("synapse", syn.name)]
@@ -334,8 +458,8 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
     fail.raise_if_any()
 
     # receptors and recorded synapses per postsynaptic role, in plan order
-    receptors_on: dict[str, list[str]] = {r: [] for r in adex_params}
-    release_on: dict[str, list[str]] = {r: [] for r in adex_params}
+    receptors_on: dict[str, list[str]] = {r: [] for r in membranes}
+    release_on: dict[str, list[str]] = {r: [] for r in membranes}
     for syn in plan.synapses:
         for rec in plan.receptors:
             if rec in syn.receptors and rec not in receptors_on[syn.post]:
@@ -381,7 +505,6 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
         terms = [models.ReceptorTerm(suffix_of[r], plan.receptors[r].mg_block)
                  for r in receptors_on[role.name]]
         has_stim = role.name in role_column
-        eqs = models.adex_equations(terms, stim_expr if has_stim else None, release_on[role.name])
         namespace: dict[str, Any] = {}
         if has_stim:
             namespace["stim_library"] = stim_library
@@ -395,28 +518,42 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
             namespace[f"P_gx_{term.suffix}"] = pgx * b2.second
             namespace[f"P_xx_{term.suffix}"] = pxx
         events = {f"release_{s}": f"deliveries_{s} > 0.5" for s in release_on[role.name]}
-        group = b2.NeuronGroup(n, eqs, threshold="v > Vcut", reset="v = Vr\nw += b",
-                               refractory="t_ref", method="euler", namespace=namespace,
-                               events=events or None, name=name)
-        params = adex_params[role.name]
         hold = (np.zeros(plan.n_repeat) if role.holding_current is None
                 else _per_repeat(plan, role.holding_current, f"holding current of role {role.name!r}"))
-        v0, has_rest = models.adex_rest(params, hold)
-        if not has_rest.all():
-            notes.append(f"role {role.name!r}: no resting state under the holding current in "
-                         f"{int((~has_rest).sum())} repeat(s); started at EL")
-        for key in models.ADEX_PARAMS:
-            setattr(group, key + "_", layout.expand(params[key]))
+        if role.name in adex_params:
+            eqs = models.adex_equations(terms, stim_expr if has_stim else None, release_on[role.name])
+            group = b2.NeuronGroup(n, eqs, threshold="v > Vcut", reset="v = Vr\nw += b",
+                                   refractory="t_ref", method="euler", namespace=namespace,
+                                   events=events or None, name=name)
+            params = adex_params[role.name]
+            v0, has_rest = models.adex_rest(params, hold)
+            if not has_rest.all():
+                notes.append(f"role {role.name!r}: no resting state under the holding current in "
+                             f"{int((~has_rest).sum())} repeat(s); started at EL")
+            for key in models.ADEX_PARAMS:
+                setattr(group, key + "_", layout.expand(params[key]))
+            group.v_ = layout.expand(v0)
+            group.w_ = layout.expand(params["a"] * (v0 - params["EL"]))
+            built.adex_roles.append(role.name)
+        else:
+            group, v0 = _hh_group(b2, plan, role, hh_params[role.name], hold, terms,
+                                  stim_expr if has_stim else None, release_on[role.name], namespace,
+                                  events, layout, name, notes)
+            built.hh_roles.append(role.name)
         group.I_hold_ = layout.expand(hold)
-        group.v_ = layout.expand(v0)
-        group.w_ = layout.expand(params["a"] * (v0 - params["EL"]))
         if has_stim:
             group.stim_index_ = np.full(n, role_column[role.name], dtype=np.int32)
         if mg_needed and any(t.mg_block for t in terms):
             group.Mg_ = float(plan.conditions["magnesium"])
+            if role.name in hh_params:
+                for t in terms:
+                    if t.mg_block:
+                        setattr(group, f"B_{t.suffix}_", models.mg_unblocked(
+                            layout.expand(v0), float(plan.conditions["magnesium"])))
         if terms:
-            group.run_regularly(models.conductance_update(terms), when="start",
-                                name=f"{name}_conductance")
+            update = (models.conductance_update(terms) if role.name in adex_params
+                      else models.hh_conductance_update(terms))
+            group.run_regularly(update, when="start", name=f"{name}_conductance")
         for s in release_on[role.name]:
             event = f"release_{s}"
             group.set_event_schedule(event, when="after_synapses", order=0)
@@ -424,7 +561,6 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
                                when="after_synapses", order=2)
         objects.append(group)
         built.cells[role.name] = group
-        built.adex_roles.append(role.name)
 
     say(f"building {len(plan.synapses)} synapse group(s)")
     for syn in plan.synapses:
@@ -477,7 +613,7 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
     for role in plan.roles:
         ident = names[("role", role.name)].removeprefix("cell_")
         group = built.cells[role.name]
-        if role.recorded and role.name in adex_params:
+        if role.recorded and role.name in membranes:
             mon = b2.StateMonitor(group, "v", record=True, dt=layout.sample_dt * b2.second,
                                   name=f"trace_{ident}")
             objects.append(mon)

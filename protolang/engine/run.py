@@ -142,7 +142,7 @@ def _where(cell: int, layout: Any) -> str:
 def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]) -> None:
     """Raise a ProtocolError naming the first cell whose integration ran away.
 
-    Forward Euler fails silently here: the spike reset catches upward runaways, so the checks
+    AdEx roles: forward Euler fails silently here: the spike reset catches upward runaways, so the checks
     are the final state, the recorded traces and the largest ``dt*g_total/C`` seen in the run.
     """
     layout = built.layout
@@ -177,6 +177,22 @@ def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]
         if worst > 0.1:
             built.notes.append(f"role {role!r}: conductances reach {worst:.2g} of the forward-Euler "
                                f"limit; a smaller time step would be more accurate")
+    for role in built.hh_roles:
+        # exponential Euler keeps these stable for any conductance; a runaway here means
+        # parameters no time step can follow (or a bug), so say where it happened
+        group = built.cells[role]
+        what, span = _describe(built.names[("role", role)], built, plan)
+        v = np.asarray(group.v_)
+        bad = ~(np.isfinite(v) & (np.abs(v) < MAX_PLAUSIBLE_V))
+        if role in raw_traces and not bad.any():
+            bad = ~(np.abs(raw_traces[role]) < MAX_PLAUSIBLE_V).all(axis=1)
+        if bad.any():
+            cell = int(np.flatnonzero(bad)[0])
+            raise error(f"numerical blow-up in {what} ({_where(cell, layout)}): the membrane "
+                        f"potential left the physical range or became undefined", span,
+                        expected="parameters and conductances the time step can follow",
+                        hint=f"use a smaller time step than {plan.dt * 1e3:g} ms, or check the "
+                             f"membrane area, capacitance and conductances of this cell")
 
 
 def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,

@@ -1,7 +1,8 @@
 """The unit table: unit symbols -> (dimension, factor to SI); quantities with dimension checks.
 
 Values are kept in SI internally (seconds, volts, amperes, siemens, ohms, farads,
-hertz, mol/m^3 (= mM), metres, kelvin) and a fraction for percent.
+hertz, mol/m^3 (= mM), metres, kelvin, S/m^2 and F/m^2 per membrane area) and a
+fraction for percent.
 """
 
 from __future__ import annotations
@@ -25,6 +26,8 @@ DIMENSIONS = {
     "temperature": "a temperature (e.g. 34 degC)",
     "percent": "a percentage (e.g. 50 %)",
     "velocity": "a velocity (e.g. 0.3 m/s)",
+    "specific_conductance": "a conductance per membrane area (e.g. 0.1 mS/cm2)",
+    "specific_capacitance": "a capacitance per membrane area (e.g. 1 uF/cm2)",
     "number": "a plain number",
 }
 
@@ -48,6 +51,10 @@ UNITS: dict[str, tuple[str, float]] = {
     "degC": ("temperature", 1.0), "K": ("temperature", 1.0),
     "%": ("percent", 0.01),
     "m/s": ("velocity", 1.0), "mm/ms": ("velocity", 1.0), "um/ms": ("velocity", 1e-3),
+    # per membrane area, SI S/m^2 and F/m^2 (1 S/cm2 = 1e4 S/m^2)
+    "S/cm2": ("specific_conductance", 1e4), "mS/cm2": ("specific_conductance", 10.0),
+    "uS/cm2": ("specific_conductance", 1e-2), "S/m2": ("specific_conductance", 1.0),
+    "uF/cm2": ("specific_capacitance", 1e-2), "F/m2": ("specific_capacitance", 1.0),
 }
 
 # Display units used when writing tables and plans back out.
@@ -55,6 +62,7 @@ DISPLAY = {
     "time": "ms", "voltage": "mV", "current": "pA", "conductance": "nS",
     "resistance": "MOhm", "capacitance": "pF", "frequency": "Hz", "concentration": "mM",
     "length": "um", "temperature": "degC", "percent": "%", "velocity": "m/s",
+    "specific_conductance": "mS/cm2", "specific_capacitance": "uF/cm2",
 }
 
 
@@ -109,7 +117,8 @@ def expect(q: Quantity, dimension: str, what: str) -> float:
     return q.si
 
 
-_QTY = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*([A-Za-z%/]*)\s*$")
+# a unit may end in one digit: the per-area units "S/cm2", "uF/cm2"
+_QTY = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*([A-Za-z%/]*\d?)\s*$")
 
 
 def parse_quantity(text: str, span: Span | None = None) -> Quantity:

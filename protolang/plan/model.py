@@ -90,10 +90,12 @@ class RolePlan:
 
     name: str
     cell_class: str
-    model: str                                   # "adex"
+    model: str                                   # "adex" | "hh_cortical" | "hh_squid"
     cell_ids: np.ndarray                         # (n_repeat,) int, ids in the circuit
     positions: np.ndarray                        # (n_repeat, 3) m
-    params: dict[str, np.ndarray]                # model parameters, SI, each (n_repeat,)
+    # model parameters, SI, each (n_repeat,); Hodgkin-Huxley roles also carry their rate
+    # factors ("phi...", Q10^((T - T_ref)/10) at the bath temperature), set by the plan
+    params: dict[str, np.ndarray]
     recorded: bool = False
     mode: str = "current clamp"                  # or "voltage clamp" or "off"
     holding_current: np.ndarray | None = None    # (n_repeat,) A, includes bias for a held potential
@@ -110,7 +112,8 @@ class RolePlan:
 
 @dataclass
 class ReceptorPlan:
-    """Kinetics of one receptor type, shared by all synapses onto a cell (SI)."""
+    """Kinetics of one receptor type, shared by all synapses onto a cell (SI), at the bath
+    temperature (the plan has already divided the circuit's rise and decay by the Q10 factor)."""
 
     name: str                 # "AMPA", "NMDA", "GABA_A"
     rise: float               # s

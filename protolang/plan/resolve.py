@@ -2,6 +2,11 @@
 
 The steps run in pipeline order: settings, bath, selection, recording, stimuli, synapses,
 measures, layout. Every number handed to the engine is SI. No Brian2 here.
+
+Temperature is applied here, once: Hodgkin-Huxley roles get their rate factors
+``q10 ** ((T - reference) / 10)`` as parameters (``phi...``), receptor rise and decay time
+constants are divided by their factor, and ``conditions["q10_factors"]`` records every
+factor applied. The engine does no temperature scaling of its own.
 """
 
 from __future__ import annotations
@@ -12,7 +17,8 @@ import numpy as np
 from ..language import ast
 from ..language.errors import Collector, ProtocolError, error
 from ..language.units import display, expect
-from ..engine.models import peak_factor
+from ..engine.models import (HH_MODELS, hh_slow_time_constants, holdable_limit, holding_is_stable,
+                             peak_factor, rate_factor_name, steady_state_current)
 from ..measure.registry import COLLECTORS
 from .check import find_pathway, run_checks
 from .model import (CurrentPulse, MeasurePlan, Plan, ReceptorPlan, RolePlan, StimulusEvent,
@@ -38,8 +44,7 @@ def release_factor(calcium: float, release) -> float:
 
 def adex_bias(params: dict[str, np.ndarray], v: float) -> np.ndarray:
     """Constant current that makes ``v`` the adaptive exponential model's rest (w at steady state)."""
-    gL, EL, VT, dT, a = (params[k] for k in ("gL", "EL", "VT", "DeltaT", "a"))
-    return gL * (v - EL) - gL * dT * np.exp((v - VT) / dT) + a * (v - EL)
+    return steady_state_current("adex", params, v)
 
 
 def adex_holdable_limit(params: dict[str, np.ndarray]) -> np.ndarray:
@@ -77,18 +82,60 @@ def _settings(p: ast.Protocol) -> dict:
 
 
 def _bath(p: ast.Protocol, circuit) -> dict:
-    cond = {"calcium": circuit.bath.calcium, "magnesium": circuit.bath.magnesium, "blocks": {}}
+    cond = {"calcium": circuit.bath.calcium, "magnesium": circuit.bath.magnesium,
+            "temperature": circuit.bath.temperature, "blocks": {}}
     for item in p.bath:
         if isinstance(item, ast.BathSetting):
             cond[item.name] = item.value.si
         else:
             frac = 1.0 if item.fraction is None else item.fraction.si
             cond["blocks"][item.receptor] = frac
+    if not isinstance(cond["temperature"], float) or not 0.0 < cond["temperature"]:
+        raise AssertionError(f"internal error: bath temperature {cond['temperature']!r} is not in kelvin")
     rel = circuit.release
     cond["release_factor"] = release_factor(cond["calcium"], rel)
     cond["release_law"] = {"calcium_reference": rel.calcium_reference,
                            "half_activation": rel.half_activation, "hill": rel.hill}
     return cond
+
+
+# --- temperature --------------------------------------------------------------------
+def cell_rate_factors(cell_class, temperature: float) -> dict[str, float]:
+    """Rate factors of a class at ``temperature`` (K): ``phi...`` name -> Q10^((T - T_ref)/10).
+
+    Empty for models without temperature dependence (adex).
+    """
+    law = cell_class.temperature
+    if law is None:
+        return {}
+    return {rate_factor_name(key): law.factor(key, temperature) for key in law.q10}
+
+
+def _class_record(cell_class, temperature: float) -> dict:
+    law = cell_class.temperature
+    if law is None:
+        return {"model": cell_class.model, "factors": {},
+                "note": "not temperature-scaled (parameters hold as fitted)"}
+    return {"model": cell_class.model, "reference": law.reference, "q10": dict(law.q10),
+            "defaults": not law.given, "factors": cell_rate_factors(cell_class, temperature)}
+
+
+def _hold(model: str, params: dict[str, np.ndarray], pick, holding) -> np.ndarray:
+    """Holding current that makes ``holding`` (a potential) a steady state; refuse unstable ones."""
+    v = holding.si
+    stable = holding_is_stable(model, params, v)
+    if not stable.all():
+        limit = holdable_limit(model, params)
+        if model == "adex":   # the fold of the I-V curve, exact
+            limit = np.minimum(limit, adex_holdable_limit(params))
+        if v >= limit.min():
+            expected = (f"a potential below {limit.min() * 1e3:.1f} mV (the cell model fires above "
+                        f"it instead of settling)")
+        else:
+            expected = "a potential at which the held cell settles (a stable steady state)"
+        raise error(f"{pick.cell_class} cells cannot be held at {holding} by a constant current",
+                    holding.span, expected=expected, hint="hold at a more negative potential")
+    return steady_state_current(model, params, v)
 
 
 # --- stimuli ------------------------------------------------------------------------
@@ -190,10 +237,16 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
     out.diagnostics.extend(warnings.warnings)
     roles: list[RolePlan] = []
     spans: dict[str, str] = {}
+    temperature = cond["temperature"]
+    q10_record: dict[str, dict] = {"cells": {}, "receptors": {}}
     for name in selection.names:
         ids = selection.ids[name]
         pick = picks[name]
+        cell_class = circuit.classes[pick.cell_class]
         params = instance.params_of(ids)
+        factors = cell_rate_factors(cell_class, temperature)
+        params.update({k: np.full(n_repeat, f) for k, f in factors.items()})
+        q10_record["cells"].setdefault(pick.cell_class, _class_record(cell_class, temperature))
         rec = rec_lines.get(name)
         pulses, spikes, events = roles_stim[name]
         holding = np.zeros(n_repeat)
@@ -203,31 +256,32 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             if rec.holding is not None:
                 if rec.holding.dimension == "voltage":
                     hold_v = rec.holding.si
-                    limit = adex_holdable_limit(params)
-                    if np.any(hold_v >= limit):
-                        raise error(f"{pick.cell_class} cells cannot be held at {rec.holding} by a constant current",
-                                    rec.holding.span,
-                                    expected=f"a potential below {limit.min() * 1e3:.1f} mV (the cell model fires above it)",
-                                    hint="hold at a more negative potential")
-                    holding = adex_bias(params, hold_v)
+                    holding = _hold(cell_class.model, params, pick, rec.holding)
                 else:
                     holding = np.full(n_repeat, rec.holding.si)
             if rec.noise is not None:
                 noise = expect(rec.noise, "voltage", "recording noise")
         roles.append(RolePlan(
-            name=name, cell_class=pick.cell_class, model=circuit.classes[pick.cell_class].model,
+            name=name, cell_class=pick.cell_class, model=cell_class.model,
             cell_ids=ids, positions=instance.positions[ids], params=params,
             recorded=rec is not None and rec.mode != "off", mode=rec.mode if rec else "current clamp",
             holding_current=holding, holding_potential=hold_v, noise_sd=noise,
             pulses=pulses, spike_times=spikes, events=events))
         spans[f"cell_{name}"] = str(pick.span)
 
-    # receptors and blocks
+    # receptors and blocks; kinetics at the bath temperature (rise and decay / Q10 factor)
     receptors = {}
     for rname, r in circuit.receptors.items():
-        receptors[rname] = ReceptorPlan(name=rname, rise=r.rise, decay=r.decay, reversal=r.reversal,
+        law = r.temperature
+        factor = law.factor("q10", temperature) if law is not None else 1.0
+        rise, decay = r.rise / factor, r.decay / factor
+        receptors[rname] = ReceptorPlan(name=rname, rise=rise, decay=decay, reversal=r.reversal,
                                         scale=1.0 - cond["blocks"].get(rname, 0.0), mg_block=r.mg_block,
-                                        peak_factor=peak_factor(r.rise, r.decay))
+                                        peak_factor=peak_factor(rise, decay))
+        q10_record["receptors"][rname] = (
+            {"reference": law.reference, "q10": law.q10["q10"], "defaults": not law.given,
+             "factor": factor} if law is not None else {"factor": 1.0})
+    cond["q10_factors"] = q10_record
 
     # synapses between every ordered pair of selected cells the circuit connects
     synapses: list[SynapsePlan] = []
@@ -289,6 +343,8 @@ def _layout(settings, interval, length, roles, receptors, synapses) -> tuple[str
         if r.model == "adex" and r.spike_times is None:
             slow.append((float(np.max(r.params["tau_w"])), f"adaptation of {r.name}"))
             slow.append((float(np.max(r.params["C"] / r.params["gL"])), f"membrane of {r.name}"))
+        elif r.model in HH_MODELS and r.spike_times is None:
+            slow += [(tau, f"{what} of {r.name}") for tau, what in hh_slow_time_constants(r.model, r.params)]
     for s in synapses:
         if s.connected.any():
             slow.append((float(np.max(s.D[s.connected])), f"recovery D of {s.name}"))
