@@ -145,6 +145,33 @@ class SynapsePlan:
 
 
 @dataclass
+class ActivationPlan:
+    """Extracellular activation: a fraction of a class's cells that project to ``target`` fire at ``times``.
+
+    One entry per activated source cell (``M`` of them over all repeats); connection arrays have
+    shape ``(M,)`` and follow :class:`SynapsePlan`'s meaning.
+    """
+
+    name: str
+    target: str
+    cell_class: str
+    pathway: str
+    fraction: float
+    times: np.ndarray                  # s, sweep time
+    source_repeat: np.ndarray          # (M,) repeat index each source belongs to
+    source_ids: np.ndarray             # (M,) circuit ids
+    n_sites: np.ndarray
+    site_conductance: np.ndarray
+    U: np.ndarray
+    U_reference: np.ndarray
+    D: np.ndarray
+    F: np.ndarray
+    delay: np.ndarray
+    receptors: dict[str, float]
+    stochastic: bool = True
+
+
+@dataclass
 class MeasurePlan:
     cell: str
     collector: str
@@ -176,6 +203,7 @@ class Plan:
     synapses: list[SynapsePlan]
     measures: list[MeasurePlan]
     spans: dict[str, str] = field(default_factory=dict)   # Brian2 object name -> "file:line:col"
+    activations: list[ActivationPlan] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
 
     def role(self, name: str) -> RolePlan:

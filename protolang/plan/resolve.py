@@ -12,17 +12,19 @@ factor applied. The engine does no temperature scaling of its own.
 from __future__ import annotations
 
 import hashlib
+from dataclasses import dataclass, field
+
 import numpy as np
 
 from ..language import ast
 from ..language.errors import Collector, ProtocolError, error
 from ..language.units import display, expect
-from ..engine.models import (HH_MODELS, hh_slow_time_constants, holdable_limit, holding_is_stable,
+from ..engine.models import (HH_MODELS, membrane_area, hh_slow_time_constants, holdable_limit, holding_is_stable,
                              peak_factor, rate_factor_name, steady_state_current)
 from ..measure.registry import COLLECTORS
 from .check import find_pathway, run_checks
-from .model import (CurrentPulse, MeasurePlan, Plan, ReceptorPlan, RolePlan, StimulusEvent,
-                    SynapsePlan)
+from .model import (ActivationPlan, CurrentPulse, MeasurePlan, NoiseSpec, Plan, PoissonSpec, ReceptorPlan,
+                    RolePlan, StimulusEvent, SynapsePlan, WaveSegment)
 from .select import select_cells
 
 DEFAULT_DT = 0.025e-3          # s; a common choice for conductance-based point neurons
@@ -139,50 +141,135 @@ def _hold(model: str, params: dict[str, np.ndarray], pick, holding) -> np.ndarra
 
 
 # --- stimuli ------------------------------------------------------------------------
-def _stimuli(block: ast.Stimulate | None) -> tuple[list[CurrentPulse], np.ndarray | None, list[StimulusEvent]]:
+DEFAULT_SERIES_RESISTANCE = 10e6   # Ohm, a typical whole-cell access resistance (common practice)
+
+
+@dataclass
+class _Stim:
+    pulses: list = field(default_factory=list)
+    spikes: np.ndarray | None = None
+    events: list = field(default_factory=list)
+    segments: list = field(default_factory=list)
+    noise: list = field(default_factory=list)
+    poisson: list = field(default_factory=list)
+    activations: list = field(default_factory=list)   # ast.Activate nodes, resolved later
+    end: float = 0.0
+
+
+def _stimuli(block: ast.Stimulate | None) -> _Stim:
+    out = _Stim()
     if block is None:
-        return [], None, []
-    pulses: list[CurrentPulse] = []
+        return out
     raw: list[tuple[float, int, str]] = []
-    spikes = None
+    ends = [0.0]
     for k, item in enumerate(block.items):
         if isinstance(item, ast.Pulse):
-            pulses.append(CurrentPulse(item.at.si, item.duration.si, item.amplitude.si))
+            out.pulses.append(CurrentPulse(item.at.si, item.duration.si, item.amplitude.si))
             raw.append((item.at.si, k, "pulse"))
         elif isinstance(item, ast.Train):
             period = 1.0 / item.rate.si
             for n in range(item.count):
                 t0 = item.start.si + n * period
-                pulses.append(CurrentPulse(t0, item.duration.si, item.amplitude.si))
+                out.pulses.append(CurrentPulse(t0, item.duration.si, item.amplitude.si))
                 raw.append((t0, k, "train"))
         elif isinstance(item, ast.SpikeTimes):
-            spikes = np.array([t.si for t in item.times])
-            raw.extend((t, k, "spike") for t in spikes)
+            out.spikes = np.array([t.si for t in item.times])
+            raw.extend((t, k, "spike") for t in out.spikes)
+        elif isinstance(item, ast.Step):
+            out.segments.append(WaveSegment("square", item.at.si, item.at.si + item.duration.si,
+                                            amplitude=item.amplitude.si))
+        elif isinstance(item, ast.StepFamily):
+            out.segments.append(WaveSegment("square", item.at.si, item.at.si + item.duration.si,
+                                            per_sweep=np.array([q.si for q in item.values])))
+        elif isinstance(item, ast.Ramp):
+            out.segments.append(WaveSegment("ramp", item.start.si, item.stop.si, amplitude=item.start_amplitude.si,
+                                            amplitude_end=item.stop_amplitude.si))
+        elif isinstance(item, ast.Sine):
+            out.segments.append(WaveSegment("sine", item.start.si, item.stop.si, amplitude=item.amplitude.si,
+                                            frequency=item.frequency.si,
+                                            offset=item.offset.si if item.offset is not None else 0.0))
+        elif isinstance(item, ast.Chirp):
+            out.segments.append(WaveSegment("chirp", item.start.si, item.stop.si, amplitude=item.amplitude.si,
+                                            frequency=item.f_start.si, frequency_end=item.f_stop.si))
+        elif isinstance(item, ast.Noise):
+            out.noise.append(NoiseSpec(mean=item.mean.si, sd=item.sd.si, tau=item.tau.si, start=item.start.si,
+                                       stop=item.stop.si,
+                                       reversal=item.reversal.si if item.reversal is not None else None))
+        elif isinstance(item, ast.PoissonInput):
+            out.poisson.append(PoissonSpec(rate=item.rate.si, conductance=item.conductance.si,
+                                           receptor=item.receptor, start=item.start.si, stop=item.stop.si))
+        elif isinstance(item, ast.Activate):
+            out.activations.append(item)
+            ends.append(max(t.si for t in item.times))
+        else:  # pragma: no cover - the parser builds only these
+            raise AssertionError(f"internal error: unknown stimulus {type(item).__name__}")
     raw.sort()
-    events = [StimulusEvent(time=t, index=i + 1, item=k, kind=kind) for i, (t, k, kind) in enumerate(raw)]
+    out.events = [StimulusEvent(time=t, index=i + 1, item=k, kind=kind) for i, (t, k, kind) in enumerate(raw)]
     # A lone pulse that follows a train is the recovery probe.
-    trains_end = [max(e.time for e in events if e.item == k) for k in {e.item for e in events if e.kind == "train"}]
-    for e in events:
+    trains_end = [max(e.time for e in out.events if e.item == k)
+                  for k in {e.item for e in out.events if e.kind == "train"}]
+    for e in out.events:
         if e.kind == "pulse" and any(e.time > t for t in trains_end):
             e.probe = True
-    # pulses on one cell must not overlap
-    order = sorted(pulses, key=lambda q: q.start)
-    for a, b in zip(order, order[1:]):
-        if b.start < a.start + a.duration - 1e-12:
-            raise error(f"two current pulses on {block.cell!r} overlap at {b.start * 1e3:g} ms", block.span,
-                        expected="pulses that end before the next one starts",
-                        hint="shift one pulse or shorten it")
-    return pulses, spikes, events
+    # pulses and steps on one cell must not overlap
+    spans = sorted([(q.start, q.start + q.duration) for q in out.pulses]
+                   + [(g.start, g.stop) for g in out.segments if g.kind == "square"])
+    for (a0, a1), (b0, _) in zip(spans, spans[1:]):
+        if b0 < a1 - 1e-12:
+            raise error(f"two current pulses or steps on {block.cell!r} overlap at {b0 * 1e3:g} ms", block.span,
+                        expected="pulses and steps that end before the next one starts",
+                        hint="shift one of them or shorten it")
+    ends += [q.start + q.duration for q in out.pulses] + [g.stop for g in out.segments]
+    ends += [n.stop for n in out.noise] + [q.stop for q in out.poisson]
+    if out.spikes is not None and len(out.spikes):
+        ends.append(float(out.spikes[-1]))
+    out.end = max(ends)
+    return out
 
 
-def _stimulus_end(roles_stim: dict) -> float:
-    end = 0.0
-    for pulses, spikes, _ in roles_stim.values():
-        for q in pulses:
-            end = max(end, q.start + q.duration)
-        if spikes is not None and len(spikes):
-            end = max(end, float(spikes[-1]))
-    return end
+def _clamp_check(params: dict, model: str, rs: float, dt: float, name: str, span) -> str:
+    """Voltage-clamp time constant Rs*C/(1 + Rs*gL); refuse a clamp forward Euler cannot integrate."""
+    if model == "adex":
+        C, gL = params["C"], params["gL"]
+    else:
+        area = membrane_area(params)
+        C, gL = params["c_m"] * area, params["g_leak"] * area
+    tau = float(np.min(rs * C / (1.0 + rs * gL)))
+    if model == "adex" and tau < 2.0 * dt:
+        raise error(f"the clamp of {name!r} is too fast for the time step: Rs*C = {tau * 1e3:.3g} ms "
+                    f"against a {dt * 1e3:g} ms step (forward Euler diverges below 2 steps)", span,
+                    expected=f"a series resistance of at least {rs * 2 * dt / tau / 1e6:.3g} MOhm, "
+                             f"or a time step of at most {tau / 2 * 1e3:.3g} ms",
+                    hint="raise `series` or use `simulate timestep ...`")
+    return f"voltage clamp of {name}: time constant {tau * 1e3:.3g} ms with {rs / 1e6:g} MOhm series resistance"
+
+
+def _activation(act: ast.Activate, target: str, target_ids: np.ndarray, circuit, instance, rng,
+                release_factor: float, stochastic: bool, index: int):
+    pw = find_pathway(circuit, act.cell_class, circuit_class_of(instance, target_ids[0]))
+    pool = instance.ids_of(act.cell_class)
+    reps, ids = [], []
+    for rep, tid in enumerate(target_ids):
+        sources = pool[instance.connected(pool, np.full(pool.shape, tid))]
+        n = int(round(act.fraction.si * len(sources)))
+        if n:
+            chosen = np.sort(rng.choice(sources, size=n, replace=False))
+            reps.extend([rep] * n)
+            ids.extend(chosen.tolist())
+    reps, ids = np.array(reps, dtype=int), np.array(ids, dtype=int)
+    tgt = target_ids[reps] if len(reps) else np.zeros(0, dtype=int)
+    cp = instance.connection_params(ids, tgt)
+    return ActivationPlan(
+        name=f"activate_{target}_{index}", target=target, cell_class=act.cell_class, pathway=pw.name,
+        fraction=act.fraction.si, times=np.array([t.si for t in act.times]), source_repeat=reps, source_ids=ids,
+        n_sites=np.asarray(cp["n_sites"], dtype=int), site_conductance=np.asarray(cp["site_conductance"]),
+        U=np.clip(np.asarray(cp["U"]) * release_factor, 0.0, 1.0), U_reference=np.asarray(cp["U"]),
+        D=np.asarray(cp["D"]), F=np.asarray(cp["F"]), delay=np.asarray(cp["delay"]),
+        receptors=dict(pw.receptors), stochastic=stochastic)
+
+
+def circuit_class_of(instance, cell_id: int) -> str:
+    return instance.class_names[int(instance.class_index[cell_id])]
 
 
 # --- the whole plan ------------------------------------------------------------------
@@ -220,7 +307,7 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
     # sweeps
     sw = protocol.sweeps
     interval = expect(sw.interval, "time", "sweep interval")
-    stim_end = _stimulus_end(roles_stim)
+    stim_end = max(st.end for st in roles_stim.values())
     if sw.length is not None:
         length = expect(sw.length, "time", "sweep length")
         if length < stim_end:
@@ -234,6 +321,7 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
                     hint="lengthen the interval or shorten the sweep with `lasting`")
 
     out = Collector()
+    notes_extra: list[str] = []
     out.diagnostics.extend(warnings.warnings)
     roles: list[RolePlan] = []
     spans: dict[str, str] = {}
@@ -248,11 +336,18 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
         params.update({k: np.full(n_repeat, f) for k, f in factors.items()})
         q10_record["cells"].setdefault(pick.cell_class, _class_record(cell_class, temperature))
         rec = rec_lines.get(name)
-        pulses, spikes, events = roles_stim[name]
+        st = roles_stim[name]
         holding = np.zeros(n_repeat)
         hold_v = None
         noise = 0.0
-        if rec is not None:
+        series = None
+        if rec is not None and rec.mode == "voltage clamp":
+            hold_v = rec.holding.si
+            series = rec.series.si if rec.series is not None else DEFAULT_SERIES_RESISTANCE
+            notes_extra.append(_clamp_check(params, cell_class.model, series, settings["dt"], name, rec.span))
+            if rec.noise is not None:
+                noise = expect(rec.noise, "current", "recording noise in voltage clamp")
+        elif rec is not None:
             if rec.holding is not None:
                 if rec.holding.dimension == "voltage":
                     hold_v = rec.holding.si
@@ -266,7 +361,8 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             cell_ids=ids, positions=instance.positions[ids], params=params,
             recorded=rec is not None and rec.mode != "off", mode=rec.mode if rec else "current clamp",
             holding_current=holding, holding_potential=hold_v, noise_sd=noise,
-            pulses=pulses, spike_times=spikes, events=events))
+            pulses=st.pulses, spike_times=st.spikes, events=st.events, segments=st.segments,
+            noise=st.noise, poisson=st.poisson, series_resistance=series))
         spans[f"cell_{name}"] = str(pick.span)
 
     # receptors and blocks; kinetics at the bath temperature (rise and decay / Q10 factor)
@@ -285,7 +381,6 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
 
     # synapses between every ordered pair of selected cells the circuit connects
     synapses: list[SynapsePlan] = []
-    notes_extra: list[str] = []
     for pre in selection.names:
         for post in selection.names:
             if pre == post:
@@ -293,7 +388,7 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             pw = find_pathway(circuit, picks[pre].cell_class, picks[post].cell_class)
             if pw is None:
                 continue
-            if roles_stim[post][1] is not None:
+            if roles_stim[post].spikes is not None:
                 notes_extra.append(f"{pre} -> {post} left out: {post} fires at explicit times and has no membrane")
                 continue
             pre_ids, post_ids = selection.ids[pre], selection.ids[post]
@@ -311,6 +406,19 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             span = next((c.span for c in picks[post].constraints
                          if isinstance(c, ast.ReceivingFrom) and c.source == pre), picks[post].span)
             spans[f"syn_{pre}_to_{post}"] = str(span)
+
+    # extracellular activation: a fraction of the class's cells that project to the target
+    activations: list[ActivationPlan] = []
+    act_rng = np.random.default_rng(np.random.SeedSequence([protocol.seed, 0xAC7]))
+    for name in selection.names:
+        for k, act in enumerate(roles_stim[name].activations):
+            plan_act = _activation(act, name, selection.ids[name], circuit, instance, act_rng,
+                                   cond["release_factor"], not settings["deterministic"], k)
+            if len(plan_act.source_ids) == 0:
+                notes_extra.append(f"{act.span}: warning: activating {act.fraction} of {act.cell_class} reaches no "
+                                   f"cell projecting to {name!r} in any repeat")
+            activations.append(plan_act)
+            spans[plan_act.name] = str(act.span)
 
     measures: list[MeasurePlan] = []
     for block in protocol.measures:
@@ -333,7 +441,7 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
         dt=settings["dt"], sample_dt=settings["sample_dt"], sweep_length=length,
         n_sweeps=sw.count, interval=interval, n_repeat=n_repeat, layout=layout, layout_reason=reason,
         mode=settings["mode"], conditions=cond, roles=roles, receptors=receptors, synapses=synapses,
-        measures=measures, spans=spans, notes=notes)
+        measures=measures, spans=spans, notes=notes, activations=activations)
 
 
 def _layout(settings, interval, length, roles, receptors, synapses) -> tuple[str, str]:
