@@ -108,6 +108,9 @@ class RolePlan:
     noise: list[NoiseSpec] = field(default_factory=list)
     poisson: list[PoissonSpec] = field(default_factory=list)
     series_resistance: float | None = None       # Ohm, voltage clamp only
+    # optional (n_repeat, n_sweeps) factor multiplying the rendered waveform of each cell and sweep
+    # (a rheobase search gives every cell its own step currents with one unit-step waveform)
+    amplitude_scale: np.ndarray | None = None
 
 
 @dataclass
