@@ -67,7 +67,16 @@ def cmd_plan(args) -> int:
     print(f"sweeps     {plan.n_sweeps} x {plan.sweep_length * 1e3:g} ms, every {plan.interval:g} s")
     print(f"layout     {plan.layout}: {plan.layout_reason}")
     print(f"bath       calcium {plan.conditions['calcium']:g} mM, magnesium {plan.conditions['magnesium']:g} mM, "
+          f"temperature {plan.conditions['temperature'] - 273.15:g} degC, "
           f"release factor {plan.conditions['release_factor']:.4f}, blocks {plan.conditions['blocks'] or 'none'}")
+    q10 = plan.conditions.get("q10_factors", {})
+    for rname, rec in sorted(q10.get("receptors", {}).items()):
+        if abs(rec.get("factor", 1.0) - 1.0) > 1e-12:
+            print(f"kinetics   {rname} rise and decay divided by {rec['factor']:.4g} (Q10 at bath temperature)")
+    for r in plan.roles:
+        rates = {k: float(v[0]) for k, v in r.params.items() if k.startswith("phi")}
+        if rates:
+            print(f"kinetics   {r.name} ({r.model}) gating rate factors " + ", ".join(f"{k} {v:.4g}" for k, v in rates.items()))
     for note in plan.notes:
         print(note)
     return 0
