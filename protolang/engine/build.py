@@ -7,9 +7,41 @@ counts once). Temperature enters through the rate factors the plan puts in each 
 parameters and through the receptor time constants the plan has already scaled: the engine
 applies no temperature scaling of its own.
 
+Stimuli: every role's pulses and wave segments are rendered by
+:func:`protolang.plan.waveforms.library` into one waveform library (a 2-D TimedArray of plain
+numbers, one column per distinct waveform over all roles, never one per replica). In the
+replicas layout each cell reads the column of its sweep through a per-cell index. In the
+sequential layout the library is read at the time within the sweep, ``(t + dt/4) mod
+interval``, and a role whose waveform changes from sweep to sweep finds its column in a small
+(n_sweeps x roles) table ``sweep_columns`` read at row ``floor((t + dt/4)/interval)``;
+``RolePlan.amplitude_scale`` enters as a per-cell factor (replicas) or through the
+(n_sweeps x cells) table ``sweep_scale`` (sequential).
+
+Voltage clamp (``mode == "voltage clamp"``): the amplifier passes ``I_clamp = (V_cmd - v)/Rs``
+into the cell, V_cmd being the holding potential plus the rendered command offsets, and the
+cell's own currents stay as they are. ``I_clamp`` is what is recorded: at steady state it
+equals the cell's net membrane current with the amplifier's sign convention, so inward
+currents (an EPSC at -70 mV) come out negative and a depolarising command step gives a
+positive capacitive transient. A clamped AdEx cell whose clamp time constant
+Rs*C/(1 + Rs*gL) is below 4 time steps is integrated by exponential Euler (forward Euler
+diverges there), with its exponential spike current and magnesium block held over each step.
+Cells start at the steady state of the clamp (the holding potential minus the series-resistance
+error), with w or the gates at steady state there.
+
+Ornstein-Uhlenbeck inputs run all the time with the exact one-step update
+(:func:`models.noise_update`), started from their stationary distribution, and enter the
+membrane only inside their window; several inputs on one cell add up. Poisson inputs are one
+PoissonGroup cell per replica, its rate switched on inside the window, each spike adding
+``conductance * peak_factor`` to the cell's receptor drive (the receptor's block scale applies
+in the current, as for synapses). Extracellular activation: one SpikeGeneratorGroup holding
+every activated source once per replica it feeds, connected through the same Tsodyks-Markram
+release synapses as the role-to-role connections.
+
 Object names follow protocol identifiers so diagnostics can cite the protocol:
-``cell_<role>`` (NeuronGroup or SpikeGeneratorGroup), ``syn_<synapse>`` (Synapses),
-``trace_<role>``, ``spikes_<role>``, ``release_<synapse>`` (monitors), ``stim_library``.
+``cell_<role>`` (NeuronGroup or SpikeGeneratorGroup), ``cell_<role>_poisson<k>`` (Poisson
+input and its ``_syn``), ``syn_<synapse>`` (Synapses), ``act_<activation>`` (source group and
+its ``_syn``), ``trace_<role>``, ``spikes_<role>``, ``release_<synapse>``, ``inputs_<...>``
+(monitors), ``stim_library``, ``sweep_columns``, ``sweep_scale``.
 Every per-replica array is built with numpy (no Python loop over replicas), and
 connectivity is passed as explicit i/j arrays so every code-generation target builds the
 same network.
@@ -17,18 +49,26 @@ same network.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
 import numpy as np
 
 from protolang.engine import models
-from protolang.language.errors import Collector, Span
-from protolang.plan.model import Plan, RolePlan, SynapsePlan
+from protolang.language.errors import Collector, Span, suggest
+from protolang.plan.model import ActivationPlan, Plan, RolePlan, SynapsePlan
+from protolang.plan.waveforms import library as render_library
 
 #: Rate standing in for "instantaneous" (D or F equal to 0): exp(-dt*rate) underflows to 0.
 INSTANT_RATE = 1e12
 
+#: A voltage-clamped AdEx cell switches to exponential Euler below this many time steps of
+#: clamp time constant (forward Euler diverges below 2; BRIAN2_NOTES section 5).
+CLAMP_EXPONENTIAL_STEPS = 4.0
+
+#: Poisson inputs draw at most one event per time step; above this rate*dt a note says so.
+POISSON_COARSE = 0.1
 
 def span_of(plan: Plan, *keys: str) -> Span | None:
     """The source span recorded in ``plan.spans`` under the first of ``keys`` present."""
@@ -49,6 +89,7 @@ def object_names(plan: Plan) -> dict[tuple[str, str], str]:
     used: set[str] = set()
     items = [("role", r.name, "cell_") for r in plan.roles]
     items += [("synapse", s.name, "syn_") for s in plan.synapses]
+    items += [("activation", a.name, "act_") for a in plan.activations]
     for kind, ident, prefix in items:
         base = prefix + models.identifier(ident)
         name, k = base, 1
@@ -88,6 +129,20 @@ class Layout:
         if self.kind == "replicas":
             return np.repeat(per_repeat, self.n_sweeps, axis=0)
         return per_repeat
+
+    @property
+    def sweep_time(self) -> str:
+        """Brian2 expression of the time within the current sweep; a quarter step keeps grid
+        times on the right side of window edges and sweep starts."""
+        if self.kind == "replicas":
+            return "(t + 0.25*dt)"
+        return "((t + 0.25*dt) % sweep_interval)"
+
+    @property
+    def sweep_row(self) -> str:
+        """Brian2 expression (a time) that reads row ``sweep`` of a per-sweep TimedArray whose
+        dt is the simulation step (sequential layout)."""
+        return "floor((t + 0.25*dt)/sweep_interval)*dt"
 
     def cells_of_repeats(self, repeats: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Cell indices of the given repeats and, for each, the repeat it belongs to."""
@@ -157,6 +212,9 @@ class Built:
     adex_roles: list[str] = field(default_factory=list)
     hh_roles: list[str] = field(default_factory=list)
     trace_monitors: dict[str, Any] = field(default_factory=dict)     # role -> StateMonitor
+    trace_variables: dict[str, str] = field(default_factory=dict)    # role -> "v" | "I_clamp"
+    trace_units: dict[str, str] = field(default_factory=dict)        # role -> "V" | "A"
+    input_monitors: dict[str, tuple[Any, np.ndarray]] = field(default_factory=dict)  # name -> (mon, cell of source)
     spike_monitors: dict[str, Any] = field(default_factory=dict)     # role -> SpikeMonitor
     release_monitors: dict[str, tuple[Any, str]] = field(default_factory=dict)  # syn -> (mon, var)
     n_synapses: dict[str, int] = field(default_factory=dict)
@@ -283,7 +341,16 @@ def _check_synapse(plan: Plan, syn: SynapsePlan, name: str, fail: Collector) -> 
     if connected.shape != (plan.n_repeat,):
         raise AssertionError(f"internal error: connected of {syn.name!r} has shape {connected.shape}")
     s["connected"] = connected
-    span = span_of(plan, name, syn.name)
+    _check_release(s, connected, f"synapse {syn.name!r}", "repeat", span_of(plan, name, syn.name), fail)
+    for rec in syn.receptors:
+        if rec not in plan.receptors:
+            raise AssertionError(f"internal error: synapse {syn.name!r} uses unknown receptor {rec!r}")
+    return s
+
+
+def _check_release(s: dict[str, np.ndarray], active: np.ndarray, what: str, unit: str,
+                   span: Span | None, fail: Collector) -> None:
+    """Refuse release parameters the Tsodyks-Markram synapses cannot use (where ``active``)."""
     rules = (("U", (s["U"] >= 0) & (s["U"] <= 1), "a release probability between 0 and 1"),
              ("D", s["D"] >= 0, "a recovery time constant >= 0"),
              ("F", s["F"] >= 0, "a facilitation time constant >= 0"),
@@ -292,14 +359,10 @@ def _check_synapse(plan: Plan, syn: SynapsePlan, name: str, fail: Collector) -> 
              ("n_sites", (s["n_sites"] >= 0) & (s["n_sites"] == np.round(s["n_sites"])),
               "a whole number of release sites >= 0"))
     for key, ok, expected in rules:
-        bad = connected & ~(ok & np.isfinite(s[key]))
+        bad = active & ~(ok & np.isfinite(s[key]))
         if bad.any():
-            fail.fail(f"synapse {syn.name!r}: {key} is {s[key][bad][0]:g} "
-                      f"(repeat {int(np.flatnonzero(bad)[0])})", span, expected=expected)
-    for rec in syn.receptors:
-        if rec not in plan.receptors:
-            raise AssertionError(f"internal error: synapse {syn.name!r} uses unknown receptor {rec!r}")
-    return s
+            fail.fail(f"{what}: {key} is {s[key][bad][0]:g} "
+                      f"({unit} {int(np.flatnonzero(bad)[0])})", span, expected=expected)
 
 
 def _check_receptors(plan: Plan, fail: Collector) -> None:
@@ -313,72 +376,283 @@ def _check_receptors(plan: Plan, fail: Collector) -> None:
                       expected="a rise time constant >= 0 (0 for an instantaneous rise)")
 
 
-def _spike_source(plan: Plan, role: RolePlan, layout: Layout, name: str,
-                  fail: Collector, notes: list[str]) -> tuple[np.ndarray, np.ndarray]:
-    """Indices and times of a role that fires at explicit times in every sweep."""
-    times = np.sort(np.asarray(role.spike_times, dtype=float).ravel())
-    span = span_of(plan, name, role.name)
+def _event_steps(times: Any, layout: Layout, what: str, span: Span | None, fail: Collector,
+                 notes: list[str]) -> np.ndarray | None:
+    """Event times within a sweep moved onto the time grid (s), sorted; None if unusable."""
+    times = np.sort(np.asarray(times, dtype=float).ravel())
     if times.size and (not np.isfinite(times).all() or times[0] < 0):
-        fail.fail(f"role {role.name!r} fires at a negative or undefined time", span,
+        fail.fail(f"{what} fires at a negative or undefined time", span,
                   expected="spike times >= 0 within the sweep")
-        return np.zeros(0, np.int64), np.zeros(0)
+        return None
     inside = times < layout.sweep_length
     if not inside.all():
-        notes.append(f"role {role.name!r}: {int((~inside).sum())} spike(s) after the end of the sweep "
+        notes.append(f"{what}: {int((~inside).sum())} spike(s) after the end of the sweep "
                      f"are not simulated")
         times = times[inside]
     steps = np.round(times / layout.dt).astype(np.int64)
     if np.any(np.diff(steps) == 0):
-        fail.fail(f"role {role.name!r} fires twice within one time step ({layout.dt * 1e3:g} ms)", span,
+        fail.fail(f"{what} fires twice within one time step ({layout.dt * 1e3:g} ms)", span,
                   expected="spike times at least one time step apart")
-        return np.zeros(0, np.int64), np.zeros(0)
-    step_times = steps * layout.dt
-    n = layout.n_cells
+        return None
+    return steps * layout.dt
+
+
+def _run_times(step_times: np.ndarray, layout: Layout) -> np.ndarray:
+    """One source's event times in run time: as given (replicas) or once per sweep (sequential)."""
     if layout.kind == "replicas":
-        return np.repeat(np.arange(n), steps.size), np.tile(step_times, n)
+        return step_times
     interval_steps = int(round(layout.interval / layout.dt))
-    per_cell = (step_times[None, :] + (np.arange(layout.n_sweeps)[:, None] * interval_steps) * layout.dt).ravel()
+    return (step_times[None, :] + (np.arange(layout.n_sweeps)[:, None] * interval_steps) * layout.dt).ravel()
+
+
+def _spike_source(plan: Plan, role: RolePlan, layout: Layout, name: str,
+                  fail: Collector, notes: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Indices and times of a role that fires at explicit times in every sweep."""
+    step_times = _event_steps(role.spike_times, layout, f"role {role.name!r}", span_of(plan, name, role.name),
+                              fail, notes)
+    if step_times is None:
+        return np.zeros(0, np.int64), np.zeros(0)
+    per_cell = _run_times(step_times, layout)
+    n = layout.n_cells
     return np.repeat(np.arange(n), per_cell.size), np.tile(per_cell, n)
 
 
-def _stimulus_library(plan: Plan, layout: Layout) -> tuple[np.ndarray | None, dict[str, int]]:
-    """One column per distinct pulse waveform (A, sampled at dt), plus a trailing zero row."""
-    columns: dict[tuple, int] = {}
-    role_column: dict[str, int] = {}
-    for role in plan.roles:
-        if role.spike_times is not None or not role.pulses:
-            continue
-        key = tuple(sorted((float(p.start), float(p.duration), float(p.amplitude)) for p in role.pulses))
-        role_column[role.name] = columns.setdefault(key, len(columns))
-    if not columns:
-        return None, role_column
+def _finite(*values: float | None) -> bool:
+    return all(v is not None and math.isfinite(v) for v in values)
+
+
+def _check_inputs(plan: Plan, role: RolePlan, name: str, spike_source: bool, layout: Layout,
+                  fail: Collector, notes: list[str]) -> None:
+    """Refuse a role's clamp, noise, Poisson and waveform settings the engine cannot simulate."""
+    span = span_of(plan, name, role.name)
+    if spike_source:
+        extras = [word for word, present in (
+            ("current waveforms", bool(role.pulses or role.segments)), ("noise", bool(role.noise)),
+            ("Poisson input", bool(role.poisson)), ("a voltage clamp", role.mode == "voltage clamp"))
+            if present]
+        if extras:
+            fail.fail(f"role {role.name!r} fires at explicit times (it has no membrane), so it cannot "
+                      f"also take {', '.join(extras)}", span,
+                      expected="explicit spike times alone on this cell",
+                      hint="drop the spike times or the other stimuli")
+        return
+    if role.mode == "voltage clamp":
+        if not _finite(role.holding_potential):
+            fail.fail(f"voltage-clamped role {role.name!r} has no holding potential", span,
+                      expected="a holding potential such as -70 mV")
+        rs = role.series_resistance
+        if not (_finite(rs) and rs > 0):
+            fail.fail(f"voltage-clamped role {role.name!r} has series resistance {rs!r}", span,
+                      expected="a series resistance greater than 0, such as 10 MOhm")
+        if role.pulses:
+            fail.fail(f"role {role.name!r} is voltage-clamped, but pulses and trains inject current", span,
+                      expected="command waveforms (step, steps of, ramp, sine, chirp) on a voltage-clamped cell",
+                      hint="record the cell in current clamp, or give the stimulus as command steps")
+    elif role.mode not in ("current clamp", "off"):
+        raise AssertionError(f"internal error: role {role.name!r} has recording mode {role.mode!r}")
+    for k, spec in enumerate(role.noise):
+        ok = (_finite(spec.mean, spec.sd, spec.tau, spec.start, spec.stop) and spec.sd >= 0 and spec.tau > 0
+              and 0 <= spec.start < spec.stop)
+        if spec.reversal is not None:
+            ok = ok and _finite(spec.reversal) and spec.mean >= 0
+        if not ok:
+            fail.fail(f"noise input {k + 1} of role {role.name!r}: mean {spec.mean:g}, sd {spec.sd:g}, "
+                      f"tau {spec.tau:g} s, window {spec.start:g}-{spec.stop:g} s", span,
+                      expected="sd >= 0, tau > 0 and 0 <= start < stop (a mean >= 0 for conductance noise)")
+    for k, spec in enumerate(role.poisson):
+        if spec.receptor not in plan.receptors:
+            fail.fail(f"Poisson input {k + 1} of role {role.name!r} acts through receptor {spec.receptor!r}, "
+                      f"which the circuit does not define", span,
+                      expected="one of " + ", ".join(repr(r) for r in plan.receptors),
+                      hint=suggest(spec.receptor, plan.receptors))
+        if not (_finite(spec.rate, spec.conductance, spec.start, spec.stop) and spec.rate >= 0
+                and spec.conductance >= 0 and 0 <= spec.start < spec.stop):
+            fail.fail(f"Poisson input {k + 1} of role {role.name!r}: rate {spec.rate:g} Hz, conductance "
+                      f"{spec.conductance:g} S, window {spec.start:g}-{spec.stop:g} s", span,
+                      expected="rate >= 0, conductance >= 0 and 0 <= start < stop")
+        elif spec.rate * layout.dt > 1.0:
+            fail.fail(f"Poisson input {k + 1} of role {role.name!r}: {spec.rate:g} Hz is more than one event "
+                      f"per time step ({layout.dt * 1e3:g} ms)", span,
+                      expected=f"a rate below {1 / layout.dt:g} Hz", hint="use a smaller time step")
+        elif spec.rate * layout.dt > POISSON_COARSE:
+            notes.append(f"role {role.name!r}: Poisson input {k + 1} draws at most one event per time step "
+                         f"and has {spec.rate * layout.dt:.2g} events per step on average; a smaller time "
+                         f"step would follow a Poisson process more closely")
+    for seg in role.segments:
+        if seg.per_sweep is not None and np.shape(seg.per_sweep) != (plan.n_sweeps,):
+            raise AssertionError(f"internal error: a step family of {role.name!r} has {np.size(seg.per_sweep)} "
+                                 f"amplitudes for {plan.n_sweeps} sweeps")
+    if role.amplitude_scale is not None:
+        scale = np.asarray(role.amplitude_scale, dtype=float)
+        if scale.shape != (plan.n_repeat, plan.n_sweeps):
+            raise AssertionError(f"internal error: amplitude_scale of {role.name!r} has shape {scale.shape}, "
+                                 f"expected ({plan.n_repeat}, {plan.n_sweeps})")
+        if not np.isfinite(scale).all():
+            fail.fail(f"role {role.name!r}: a stimulus amplitude factor is not a finite number", span,
+                      expected="finite amplitudes")
+
+
+def _check_activation(plan: Plan, act: ActivationPlan, name: str, layout: Layout, fail: Collector,
+                      notes: list[str]) -> dict[str, np.ndarray] | None:
+    """Per-source arrays of an extracellular activation, checked; ``times`` on the time grid."""
+    span = span_of(plan, name, act.name)
+    m = int(np.asarray(act.source_ids).size)
+    values = {}
+    for key in ("source_repeat", "n_sites", "site_conductance", "U", "D", "F", "delay"):
+        arr = np.asarray(getattr(act, key), dtype=float)
+        if arr.shape != (m,):
+            raise AssertionError(f"internal error: {key} of activation {act.name!r} has shape {arr.shape}, "
+                                 f"expected ({m},)")
+        values[key] = arr
+    rep = values["source_repeat"]
+    if m and (rep.min() < 0 or rep.max() >= plan.n_repeat or np.any(rep != np.round(rep))):
+        raise AssertionError(f"internal error: activation {act.name!r} names repeats outside 0..{plan.n_repeat - 1}")
+    values["source_repeat"] = rep.astype(np.int64)
+    for rec in act.receptors:
+        if rec not in plan.receptors:
+            raise AssertionError(f"internal error: activation {act.name!r} uses unknown receptor {rec!r}")
+    _check_release(values, np.ones(m, dtype=bool), f"activation {act.name!r}", "source", span, fail)
+    times = _event_steps(act.times, layout, f"activation {act.name!r}", span, fail, notes)
+    if times is None:
+        return None
+    values["times"] = times
+    return values
+
+
+@dataclass
+class StimulusLibrary:
+    """Every role's rendered waveforms as columns of one table (plain SI numbers)."""
+
+    values: np.ndarray                  # (n_steps + 1, K), the last row 0
+    columns: dict[str, np.ndarray]      # role -> (n_sweeps,) column of each sweep
+    scales: dict[str, np.ndarray]       # role -> (n_repeat, n_sweeps) amplitude factors
+
+
+def stimulus_library(plan: Plan, layout: Layout) -> StimulusLibrary | None:
+    """Render each role's pulses and segments (:func:`protolang.plan.waveforms.library`) and
+    pool the distinct columns of all roles; None when no role has a waveform.
+
+    The trailing zero row is what Brian2 returns past the end of a sweep (it holds the last
+    value), so the gaps between sweeps of the sequential layout carry no stimulus.
+    """
+    import hashlib
+
     n_steps = int(round(layout.sweep_length / layout.dt))
-    # the last row stays 0: Brian2 holds the last value beyond the end (sequential gaps)
-    values = np.zeros((n_steps + 1, len(columns)))
-    for key, col in columns.items():
-        for start, duration, amplitude in key:
-            on = int(round(start / layout.dt))
-            off = int(round((start + duration) / layout.dt))
-            on, off = max(on, 0), min(off, n_steps)
-            if off > on:
-                values[on:off, col] += amplitude
-    return values, role_column
+    cols: list[np.ndarray] = []
+    seen: dict[bytes, int] = {}
+    columns: dict[str, np.ndarray] = {}
+    scales: dict[str, np.ndarray] = {}
+    for role in plan.roles:
+        if role.spike_times is not None or not (role.pulses or role.segments):
+            continue
+        waves, index = render_library(role, plan.n_sweeps, layout.dt, n_steps)
+        if waves.ndim != 2 or waves.shape[0] != n_steps or index.shape != (plan.n_sweeps,):
+            raise AssertionError(f"internal error: waveform library of {role.name!r} has shape {waves.shape}")
+        where = []
+        for k in range(waves.shape[1]):
+            col = np.ascontiguousarray(waves[:, k], dtype=np.float64)
+            key = hashlib.sha256(col.data).digest()
+            if key not in seen:
+                seen[key] = len(cols)
+                cols.append(col)
+            where.append(seen[key])
+        columns[role.name] = np.asarray(where, dtype=np.int64)[index]
+        if role.amplitude_scale is not None:
+            scales[role.name] = np.asarray(role.amplitude_scale, dtype=float)
+    if not cols:
+        return None
+    values = np.zeros((n_steps + 1, len(cols)))
+    values[:n_steps] = np.stack(cols, axis=1)
+    return StimulusLibrary(values, columns, scales)
+
+
+def _stimulus_text(role: RolePlan, layout: Layout, lib: StimulusLibrary, column_slot: dict[str, int],
+                   scale_slot: dict[str, int]) -> tuple[str, tuple[str, ...], dict[str, np.ndarray]]:
+    """The stimulus expression of a role, the per-cell variables it reads and their values."""
+    cols = lib.columns[role.name]
+    decl: list[str] = []
+    per_cell: dict[str, np.ndarray] = {}
+    if layout.kind == "replicas":
+        expr = "stim_library(t, stim_index)"
+        decl.append("stim_index : integer (constant)")
+        per_cell["stim_index"] = np.tile(cols, layout.n_repeat)
+        if role.name in lib.scales:
+            expr += "*stim_scale"
+            decl.append("stim_scale : 1 (constant)")
+            per_cell["stim_scale"] = lib.scales[role.name].ravel()
+        return expr, tuple(decl), per_cell
+    if role.name in column_slot:
+        column = f"int(sweep_columns({layout.sweep_row}, {column_slot[role.name]}) + 0.5)"
+    else:
+        column = "stim_index"
+        decl.append("stim_index : integer (constant)")
+        per_cell["stim_index"] = np.full(layout.n_cells, cols[0], dtype=np.int64)
+    expr = f"stim_library({layout.sweep_time}, {column})"
+    if role.name in scale_slot:
+        expr += f"*sweep_scale({layout.sweep_row}, scale_slot)"
+        decl.append("scale_slot : integer (constant)")
+        per_cell["scale_slot"] = scale_slot[role.name] + np.arange(layout.n_cells)
+    return expr, tuple(decl), per_cell
+
+
+def _tm_synapses(b2: Any, plan: Plan, name: str, source: Any, target: Any, pre: np.ndarray,
+                 post: np.ndarray, which: np.ndarray, values: dict[str, np.ndarray],
+                 receptors: dict[str, float], stochastic: bool, suffix_of: dict[str, str],
+                 release_var: str | None = None) -> tuple[Any, int]:
+    """Tsodyks-Markram release synapses ``pre[k] -> post[k]`` with the parameters at ``which[k]``
+    of ``values``; one synapse per release site when ``stochastic``. (None, 0) if there are none."""
+    sites = np.round(values["n_sites"]).astype(np.int64)
+    if stochastic:
+        count = sites[which]
+        pre, post, which = np.repeat(pre, count), np.repeat(post, count), np.repeat(which, count)
+    if pre.size == 0:
+        return None, 0
+    rec_names = [r for r in plan.receptors if r in receptors]
+    suffixes = [suffix_of[r] for r in rec_names]
+    group = b2.Synapses(source, target, model=models.synapse_model(stochastic, suffixes),
+                        on_pre=models.synapse_on_pre(stochastic, suffixes, release_var),
+                        namespace={}, name=name)
+    group.connect(i=pre, j=post)
+    group.U_ = values["U"][which]
+    D, F = values["D"], values["F"]
+    group.rate_D_ = np.where(D > 0, 1.0 / np.where(D > 0, D, 1.0), INSTANT_RATE)[which]
+    group.rate_F_ = np.where(F > 0, 1.0 / np.where(F > 0, F, 1.0), INSTANT_RATE)[which]
+    group.u_fac_ = 0.0
+    group.t_last_ = 0.0
+    if stochastic:
+        group.available_ = 1.0
+    else:
+        group.R_ = 1.0
+        group.sites_ = sites[which].astype(float)
+    for suffix, rname in zip(suffixes, rec_names):
+        rec = plan.receptors[rname]
+        q = values["site_conductance"] * float(receptors[rname]) * models.peak_factor(rec.rise, rec.decay)
+        setattr(group, f"q_{suffix}_", q[which])
+    group.delay_ = values["delay"][which]
+    return group, int(pre.size)
 
 
 def _hh_group(b2: Any, plan: Plan, role: RolePlan, params: dict[str, np.ndarray], hold: np.ndarray,
-              terms: list, stim_expr: str | None, release_vars: list[str],
+              terms: list, inputs: models.CellInputs, release_vars: list[str],
               namespace: dict, events: dict, layout: Layout, name: str,
               notes: list[str]) -> tuple[Any, np.ndarray]:
-    """A NeuronGroup of Hodgkin-Huxley cells, started at rest under their holding current."""
+    """A NeuronGroup of Hodgkin-Huxley cells, started at rest under their holding current (or
+    at the steady state of their voltage clamp)."""
     model = role.model
     # leave out currents no repeat has: fewer state variables, same dynamics
     channels = [ch for ch, g in models.hh_channels(model).items() if np.any(params[g] > 0)]
-    eqs = models.hh_equations(model, channels, terms, stim_expr, release_vars, exprel=EXPREL_NAME)
+    eqs = models.hh_equations(model, channels, terms, inputs, release_vars, exprel=EXPREL_NAME)
     namespace = dict(namespace, **{EXPREL_NAME: exprel_function(b2)})
     group = b2.NeuronGroup(layout.n_cells, eqs, threshold=HH_SPIKE_THRESHOLD,
                            refractory=HH_SPIKE_THRESHOLD, method="exponential_euler",
                            namespace=namespace, events=events or None, name=name)
-    if role.holding_potential is not None:
+    if inputs.clamp:
+        v0, found = models.clamp_rest(model, params, float(role.holding_potential),
+                                      float(role.series_resistance), hold)
+        if not found.all():
+            notes.append(f"role {role.name!r}: no steady state of the voltage clamp found in "
+                         f"{int((~found).sum())} repeat(s); started at the holding potential")
+    elif role.holding_potential is not None:
         # the plan's holding current makes this potential a steady state (checked stable there)
         v0 = np.full(plan.n_repeat, float(role.holding_potential))
     else:
@@ -386,10 +660,11 @@ def _hh_group(b2: Any, plan: Plan, role: RolePlan, params: dict[str, np.ndarray]
         if not found.all():
             notes.append(f"role {role.name!r}: no resting state under the holding current in "
                          f"{int((~found).sum())} repeat(s); started at E_leak")
-    stable = models.holding_is_stable(model, params, v0)
-    if not stable.all():
-        notes.append(f"role {role.name!r}: the resting state under the holding current is unstable "
-                     f"in {int((~stable).sum())} repeat(s): the cell fires or oscillates from the start")
+    if not inputs.clamp:
+        stable = models.holding_is_stable(model, params, v0)
+        if not stable.all():
+            notes.append(f"role {role.name!r}: the resting state under the holding current is unstable "
+                         f"in {int((~stable).sum())} repeat(s): the cell fires or oscillates from the start")
     area = models.membrane_area(params)
     group.area_ = layout.expand(area)
     for key in models.MODEL_PARAMS[model] + models.HH_RATE_FACTORS[model]:
@@ -403,6 +678,26 @@ def _hh_group(b2: Any, plan: Plan, role: RolePlan, params: dict[str, np.ndarray]
     return group, v0
 
 
+#: Stream of the noise processes' starting values (apart from every other use of the seed).
+_NOISE_STREAM = 0x0C0FFEE
+
+
+def _noise_namespace(b2: Any, role: RolePlan, dt: float) -> tuple[tuple[models.NoiseTerm, ...], dict]:
+    terms, ns = [], {}
+    for k, spec in enumerate(role.noise):
+        conductance = spec.reversal is not None
+        unit = b2.siemens if conductance else b2.amp
+        terms.append(models.NoiseTerm(k, conductance))
+        ns[f"noise_start_{k}"] = spec.start * b2.second
+        ns[f"noise_stop_{k}"] = spec.stop * b2.second
+        ns[f"noise_mean_{k}"] = spec.mean * unit
+        ns[f"noise_decay_{k}"] = math.exp(-dt / spec.tau)
+        ns[f"noise_kick_{k}"] = spec.sd * math.sqrt(-math.expm1(-2.0 * dt / spec.tau)) * unit
+        if conductance:
+            ns[f"noise_E_{k}"] = spec.reversal * b2.volt
+    return tuple(terms), ns
+
+
 def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
                   progress: Callable[[str], None] | None = None) -> Built:
     """Build the Brian2 network of a plan (one network for all repeats and sweeps).
@@ -410,7 +705,8 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
     Args:
         plan: the resolved experiment.
         b2: the imported ``brian2`` module.
-        record_release: add per-cell release accumulators and event monitors.
+        record_release: add per-cell release accumulators and event monitors (role-to-role
+            synapses).
         progress: optional callable receiving stage messages.
 
     Returns:
@@ -444,6 +740,7 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
             fail.fail(f"role {role.name!r} uses cell model {role.model!r}, which the engine cannot simulate",
                       span_of(plan, name, role.name),
                       expected="cell model 'adex', " + ", ".join(repr(m) for m in models.HH_MODELS))
+        _check_inputs(plan, role, name, role.spike_times is not None, layout, fail, notes)
     membranes = [r.name for r in plan.roles if r.name in adex_params or r.name in hh_params]
     syn_params: dict[str, dict[str, np.ndarray]] = {}
     for syn in plan.synapses:
@@ -455,17 +752,31 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
                       f"has no membrane", span_of(plan, name, syn.name),
                       expected="a postsynaptic role that is a simulated cell")
         syn_params[syn.name] = _check_synapse(plan, syn, name, fail)
+    act_params: dict[str, dict[str, np.ndarray] | None] = {}
+    for act in plan.activations:
+        name = names[("activation", act.name)]
+        if act.target not in roles:
+            raise AssertionError(f"internal error: activation {act.name!r} targets unknown role {act.target!r}")
+        if act.target in spike_sources:
+            fail.fail(f"activation {act.name!r} targets role {act.target!r}, which fires at explicit times "
+                      f"and has no membrane", span_of(plan, name, act.name),
+                      expected="a target that is a simulated cell")
+        act_params[act.name] = _check_activation(plan, act, name, layout, fail, notes)
     fail.raise_if_any()
 
-    # receptors and recorded synapses per postsynaptic role, in plan order
-    receptors_on: dict[str, list[str]] = {r: [] for r in membranes}
+    # receptors per postsynaptic role (in plan order) and recorded synapses
+    needed: dict[str, set[str]] = {r: set() for r in membranes}
     release_on: dict[str, list[str]] = {r: [] for r in membranes}
     for syn in plan.synapses:
-        for rec in plan.receptors:
-            if rec in syn.receptors and rec not in receptors_on[syn.post]:
-                receptors_on[syn.post].append(rec)
+        needed[syn.post].update(syn.receptors)
         if record_release:
             release_on[syn.post].append(release_suffix(plan, syn))
+    for act in plan.activations:
+        needed[act.target].update(act.receptors)
+    for role in plan.roles:
+        if role.name in needed:
+            needed[role.name].update(spec.receptor for spec in role.poisson)
+    receptors_on = {r: [rec for rec in plan.receptors if rec in needed[r]] for r in membranes}
     suffix_of: dict[str, str] = {}
     for rname in plan.receptors:
         suffix = models.variable_suffix(rname)
@@ -479,20 +790,29 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
     b2.defaultclock.dt = layout.dt * b2.second
     objects: list[Any] = []
     built = Built(network=None, layout=layout, names=names, notes=notes)
-
-    library, role_column = _stimulus_library(plan, layout)
-    stim_library = None
-    if library is not None:
-        stim_library = b2.TimedArray(library * b2.amp, dt=layout.dt * b2.second, name="stim_library")
-        if layout.kind == "replicas":
-            stim_expr = "stim_library(t, stim_index)"
-        else:
-            # a quarter step keeps t on the right side of each sweep start after the modulo
-            stim_expr = "stim_library((t + 0.25*dt) % sweep_interval, stim_index)"
-
-    say(f"building {len(plan.roles)} cell group(s) of {layout.n_cells} cell(s) ({layout.kind} layout)")
     n = layout.n_cells
-    for role in plan.roles:
+
+    # the waveform library and, in the sequential layout, the per-sweep tables that index it
+    lib = stimulus_library(plan, layout)
+    stim_ns: dict[str, Any] = {"sweep_interval": layout.interval * b2.second}
+    column_slot: dict[str, int] = {}
+    scale_slot: dict[str, int] = {}
+    if lib is not None:
+        stim_ns["stim_library"] = b2.TimedArray(lib.values, dt=layout.dt * b2.second, name="stim_library")
+        if layout.kind == "sequential":
+            varying = [r for r, cols in lib.columns.items() if np.any(cols != cols[0])]
+            if varying:
+                table = np.stack([lib.columns[r] for r in varying], axis=1).astype(float)
+                column_slot = {r: k for k, r in enumerate(varying)}
+                stim_ns["sweep_columns"] = b2.TimedArray(table, dt=layout.dt * b2.second, name="sweep_columns")
+            if lib.scales:
+                table = np.concatenate([lib.scales[r].T for r in lib.scales], axis=1)
+                offsets = np.cumsum([0] + [lib.scales[r].shape[0] for r in lib.scales])
+                scale_slot = {r: int(o) for r, o in zip(lib.scales, offsets)}
+                stim_ns["sweep_scale"] = b2.TimedArray(table, dt=layout.dt * b2.second, name="sweep_scale")
+
+    say(f"building {len(plan.roles)} cell group(s) of {n} cell(s) ({layout.kind} layout)")
+    for index, role in enumerate(plan.roles):
         name = names[("role", role.name)]
         if role.name in spike_sources:
             idx, times = spike_sources[role.name]
@@ -504,11 +824,14 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
             continue
         terms = [models.ReceptorTerm(suffix_of[r], plan.receptors[r].mg_block)
                  for r in receptors_on[role.name]]
-        has_stim = role.name in role_column
-        namespace: dict[str, Any] = {}
-        if has_stim:
-            namespace["stim_library"] = stim_library
-            namespace["sweep_interval"] = layout.interval * b2.second
+        clamp = role.mode == "voltage clamp"
+        stim_expr, decl, per_cell = (None, (), {})
+        if lib is not None and role.name in lib.columns:
+            stim_expr, decl, per_cell = _stimulus_text(role, layout, lib, column_slot, scale_slot)
+        noise_terms, noise_ns = _noise_namespace(b2, role, layout.dt)
+        inputs = models.CellInputs(stimulus=stim_expr, declarations=decl, clamp=clamp, noise=noise_terms,
+                                   sweep_time=layout.sweep_time)
+        namespace: dict[str, Any] = dict(stim_ns, **noise_ns)
         for term, rname in zip(terms, receptors_on[role.name]):
             rec = plan.receptors[rname]
             pgg, pgx, pxx = models.propagator(rec.rise, rec.decay, layout.dt)
@@ -520,29 +843,70 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
         events = {f"release_{s}": f"deliveries_{s} > 0.5" for s in release_on[role.name]}
         hold = (np.zeros(plan.n_repeat) if role.holding_current is None
                 else _per_repeat(plan, role.holding_current, f"holding current of role {role.name!r}"))
+        update = ""
         if role.name in adex_params:
-            eqs = models.adex_equations(terms, stim_expr if has_stim else None, release_on[role.name])
-            group = b2.NeuronGroup(n, eqs, threshold="v > Vcut", reset="v = Vr\nw += b",
-                                   refractory="t_ref", method="euler", namespace=namespace,
-                                   events=events or None, name=name)
             params = adex_params[role.name]
-            v0, has_rest = models.adex_rest(params, hold)
-            if not has_rest.all():
-                notes.append(f"role {role.name!r}: no resting state under the holding current in "
-                             f"{int((~has_rest).sum())} repeat(s); started at EL")
+            linear = False
+            if clamp:
+                rs = float(role.series_resistance)
+                tau_clamp = float(np.min(rs * params["C"] / (1.0 + rs * params["gL"])))
+                linear = tau_clamp < CLAMP_EXPONENTIAL_STEPS * layout.dt
+                if linear:
+                    notes.append(f"role {role.name!r}: the clamp time constant ({tau_clamp * 1e3:.3g} ms) is "
+                                 f"below {CLAMP_EXPONENTIAL_STEPS:g} time steps; the cell is integrated by "
+                                 f"exponential Euler")
+            eqs = models.adex_equations(terms, inputs, release_on[role.name], linear=linear)
+            group = b2.NeuronGroup(n, eqs, threshold="v > Vcut", reset="v = Vr\nw += b",
+                                   refractory="t_ref", method="exponential_euler" if linear else "euler",
+                                   namespace=namespace, events=events or None, name=name)
+            if clamp:
+                v0, found = models.clamp_rest("adex", params, float(role.holding_potential),
+                                              float(role.series_resistance), hold)
+                if not found.all():
+                    notes.append(f"role {role.name!r}: no steady state of the voltage clamp found in "
+                                 f"{int((~found).sum())} repeat(s); started at the holding potential")
+            else:
+                v0, has_rest = models.adex_rest(params, hold)
+                if not has_rest.all():
+                    notes.append(f"role {role.name!r}: no resting state under the holding current in "
+                                 f"{int((~has_rest).sum())} repeat(s); started at EL")
             for key in models.ADEX_PARAMS:
                 setattr(group, key + "_", layout.expand(params[key]))
             group.v_ = layout.expand(v0)
             group.w_ = layout.expand(params["a"] * (v0 - params["EL"]))
+            if linear:
+                group.I_exp_ = layout.expand(params["gL"] * params["DeltaT"]
+                                             * np.exp((v0 - params["VT"]) / params["DeltaT"]))
+                for t in terms:
+                    if t.mg_block:
+                        setattr(group, f"B_{t.suffix}_", models.mg_unblocked(
+                            layout.expand(v0), float(plan.conditions["magnesium"])))
+                update = models.adex_linear_update(terms)
+            else:
+                extras = models.load_conductances(inputs)
+                if extras:
+                    update = models.conductance_update(terms, extras)
+                elif terms:
+                    update = models.conductance_update(terms)
             built.adex_roles.append(role.name)
         else:
-            group, v0 = _hh_group(b2, plan, role, hh_params[role.name], hold, terms,
-                                  stim_expr if has_stim else None, release_on[role.name], namespace,
-                                  events, layout, name, notes)
+            group, v0 = _hh_group(b2, plan, role, hh_params[role.name], hold, terms, inputs,
+                                  release_on[role.name], namespace, events, layout, name, notes)
+            if terms:
+                update = models.hh_conductance_update(terms)
             built.hh_roles.append(role.name)
         group.I_hold_ = layout.expand(hold)
-        if has_stim:
-            group.stim_index_ = np.full(n, role_column[role.name], dtype=np.int32)
+        for var, values in per_cell.items():
+            setattr(group, var + "_", values)
+        if clamp:
+            group.V_hold_ = float(role.holding_potential)
+            group.R_series_ = float(role.series_resistance)
+        if noise_terms:
+            rng = np.random.default_rng([int(plan.seed), _NOISE_STREAM, index])
+            for term, spec in zip(noise_terms, role.noise):
+                # start each process in its stationary distribution
+                setattr(group, f"noise_{term.index}_", spec.mean + spec.sd * rng.standard_normal(n))
+            update = "\n".join(part for part in (update, models.noise_update(noise_terms)) if part)
         if mg_needed and any(t.mg_block for t in terms):
             group.Mg_ = float(plan.conditions["magnesium"])
             if role.name in hh_params:
@@ -550,9 +914,7 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
                     if t.mg_block:
                         setattr(group, f"B_{t.suffix}_", models.mg_unblocked(
                             layout.expand(v0), float(plan.conditions["magnesium"])))
-        if terms:
-            update = (models.conductance_update(terms) if role.name in adex_params
-                      else models.hh_conductance_update(terms))
+        if update:
             group.run_regularly(update, when="start", name=f"{name}_conductance")
         for s in release_on[role.name]:
             event = f"release_{s}"
@@ -566,41 +928,16 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
     for syn in plan.synapses:
         name = names[("synapse", syn.name)]
         sp = syn_params[syn.name]
-        suffixes = [suffix_of[r] for r in plan.receptors if r in syn.receptors]
-        rec_names = [r for r in plan.receptors if r in syn.receptors]
         rel_var = release_suffix(plan, syn) if record_release else None
         sites = np.round(sp["n_sites"]).astype(np.int64)
         repeats = np.flatnonzero(sp["connected"] & (sites > 0))
         cells, rep_of_cell = layout.cells_of_repeats(repeats)
-        if syn.stochastic:
-            count = sites[rep_of_cell]
-            cells, rep_of_cell = np.repeat(cells, count), np.repeat(rep_of_cell, count)
-        built.n_synapses[syn.name] = int(cells.size)
-        if cells.size == 0:
+        group, count = _tm_synapses(b2, plan, name, built.cells[syn.pre], built.cells[syn.post], cells, cells,
+                                    rep_of_cell, sp, syn.receptors, syn.stochastic, suffix_of, rel_var)
+        built.n_synapses[syn.name] = count
+        if group is None:
             notes.append(f"synapse {syn.name!r} connects no repeat; it is left out of the network")
         else:
-            group = b2.Synapses(built.cells[syn.pre], built.cells[syn.post],
-                                model=models.synapse_model(syn.stochastic, suffixes),
-                                on_pre=models.synapse_on_pre(syn.stochastic, suffixes, rel_var),
-                                namespace={}, name=name)
-            group.connect(i=cells, j=cells)
-            group.U_ = sp["U"][rep_of_cell]
-            with np.errstate(divide="ignore"):
-                group.rate_D_ = np.where(sp["D"] > 0, 1.0 / sp["D"], INSTANT_RATE)[rep_of_cell]
-                group.rate_F_ = np.where(sp["F"] > 0, 1.0 / sp["F"], INSTANT_RATE)[rep_of_cell]
-            group.u_fac_ = 0.0
-            group.t_last_ = 0.0
-            if syn.stochastic:
-                group.available_ = 1.0
-            else:
-                group.R_ = 1.0
-                group.sites_ = sites[rep_of_cell].astype(float)
-            for suffix, rname in zip(suffixes, rec_names):
-                rec = plan.receptors[rname]
-                q = (sp["site_conductance"] * float(syn.receptors[rname])
-                     * models.peak_factor(rec.rise, rec.decay))
-                setattr(group, f"q_{suffix}_", q[rep_of_cell])
-            group.delay_ = sp["delay"][rep_of_cell]
             objects.append(group)
         if record_release:
             post = built.cells[syn.post]
@@ -610,14 +947,75 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
             objects.append(mon)
             built.release_monitors[syn.name] = (mon, f"released_{rel_var}")
 
+    # Poisson inputs: one source cell per replica, on only inside its window
+    for role in plan.roles:
+        name = names[("role", role.name)]
+        for k, spec in enumerate(role.poisson):
+            key = f"{role.name}_poisson_{k}"
+            if spec.rate <= 0 or spec.conductance <= 0:
+                notes.append(f"role {role.name!r}: Poisson input {k + 1} has no rate or no conductance; "
+                             f"it is left out of the network")
+                built.input_monitors[key] = (None, np.zeros(0, dtype=np.int64))
+                continue
+            ts = layout.sweep_time
+            source = b2.PoissonGroup(
+                n, rates=f"poisson_rate*int({ts} >= poisson_start and {ts} < poisson_stop)",
+                namespace={"poisson_rate": spec.rate * b2.Hz, "poisson_start": spec.start * b2.second,
+                           "poisson_stop": spec.stop * b2.second, "sweep_interval": layout.interval * b2.second},
+                name=f"{name}_poisson{k}")
+            rec = plan.receptors[spec.receptor]
+            jump = spec.conductance * models.peak_factor(rec.rise, rec.decay)
+            link = b2.Synapses(source, built.cells[role.name],
+                               on_pre=f"x_{suffix_of[spec.receptor]}_post += poisson_jump",
+                               namespace={"poisson_jump": jump * b2.siemens / b2.second},
+                               name=f"{name}_poisson{k}_syn")
+            link.connect(i=np.arange(n), j=np.arange(n))
+            mon = b2.SpikeMonitor(source, record=True, name=f"inputs_{name.removeprefix('cell_')}_poisson{k}")
+            objects += [source, link, mon]
+            built.input_monitors[key] = (mon, np.arange(n))
+
+    # extracellular activation: every source once per replica it feeds
+    for act in plan.activations:
+        name = names[("activation", act.name)]
+        ap = act_params[act.name]
+        m = int(ap["source_repeat"].size)
+        if m == 0 or ap["times"].size == 0:
+            notes.append(f"activation {act.name!r} activates no cell; it is left out of the network")
+            built.input_monitors[act.name] = (None, np.zeros(0, dtype=np.int64))
+            built.n_synapses[act.name] = 0
+            continue
+        if layout.kind == "replicas":
+            n_gen = m * layout.n_sweeps
+            gen_target = (ap["source_repeat"][:, None] * layout.n_sweeps
+                          + np.arange(layout.n_sweeps)[None, :]).ravel()
+            gen_param = np.repeat(np.arange(m), layout.n_sweeps)
+        else:
+            n_gen = m
+            gen_target = ap["source_repeat"].copy()
+            gen_param = np.arange(m)
+        per_gen = _run_times(ap["times"], layout)
+        source = b2.SpikeGeneratorGroup(n_gen, np.repeat(np.arange(n_gen), per_gen.size),
+                                        np.tile(per_gen, n_gen) * b2.second, name=name)
+        valid = np.flatnonzero(np.round(ap["n_sites"])[gen_param] > 0)
+        group, count = _tm_synapses(b2, plan, f"{name}_syn", source, built.cells[act.target], valid,
+                                    gen_target[valid], gen_param[valid], ap, act.receptors, act.stochastic,
+                                    suffix_of)
+        built.n_synapses[act.name] = count
+        mon = b2.SpikeMonitor(source, record=True, name=f"inputs_{name.removeprefix('act_')}")
+        objects += [source, mon] + ([group] if group is not None else [])
+        built.input_monitors[act.name] = (mon, gen_target)
+
     for role in plan.roles:
         ident = names[("role", role.name)].removeprefix("cell_")
         group = built.cells[role.name]
         if role.recorded and role.name in membranes:
-            mon = b2.StateMonitor(group, "v", record=True, dt=layout.sample_dt * b2.second,
+            var = "I_clamp" if role.mode == "voltage clamp" else "v"
+            mon = b2.StateMonitor(group, var, record=True, dt=layout.sample_dt * b2.second,
                                   name=f"trace_{ident}")
             objects.append(mon)
             built.trace_monitors[role.name] = mon
+            built.trace_variables[role.name] = var
+            built.trace_units[role.name] = "A" if var == "I_clamp" else "V"
         spikes = b2.SpikeMonitor(group, name=f"spikes_{ident}")
         objects.append(spikes)
         built.spike_monitors[role.name] = spikes

@@ -183,22 +183,97 @@ class ReceptorTerm:
     mg_block: bool
 
 
-def adex_equations(receptors: list[ReceptorTerm], stimulus: str | None,
-                   release_vars: list[str]) -> str:
+@dataclass(frozen=True)
+class NoiseTerm:
+    """One Ornstein-Uhlenbeck input of a cell: state ``noise_<index>``, a current (A) or a
+    conductance (S) acting through its reversal ``noise_E_<index>``."""
+
+    index: int
+    conductance: bool
+
+
+@dataclass(frozen=True)
+class CellInputs:
+    """What drives a cell besides its synapses, as pieces of equation text.
+
+    Attributes:
+        stimulus: expression of the rendered waveform as a plain number: amperes of injected
+            current in current clamp, volts of command offset from the holding potential in
+            voltage clamp; None without a waveform.
+        declarations: per-cell variables the stimulus expression reads.
+        clamp: a series-resistance voltage clamp (constants ``V_hold``, ``R_series`` per cell).
+        noise: Ornstein-Uhlenbeck inputs, summed.
+        sweep_time: expression of the time within the sweep, for the noise windows.
+    """
+
+    stimulus: str | None = None
+    declarations: tuple[str, ...] = ()
+    clamp: bool = False
+    noise: tuple[NoiseTerm, ...] = ()
+    sweep_time: str = "t"
+
+
+def input_equations(inputs: CellInputs) -> tuple[list[str], list[str]]:
+    """Drive terms (amperes) and equation lines of a cell's stimulus, clamp and noise.
+
+    The clamp passes ``I_clamp = (V_cmd - v)/R_series`` into the cell, ``V_cmd`` being the
+    holding potential plus the rendered command offset. A noise input enters only inside its
+    window ``[noise_start_k, noise_stop_k)`` of sweep time; its process runs all the time, so
+    it is stationary when the window opens. A conductance input is clipped at 0.
+    """
+    drive: list[str] = []
+    lines = list(inputs.declarations)
+    if inputs.clamp:
+        drive.append("I_clamp")
+        command = "V_hold" + (f" + ({inputs.stimulus})*volt" if inputs.stimulus else "")
+        lines += ["I_clamp = (V_cmd - v)/R_series : amp", f"V_cmd = {command} : volt",
+                  "V_hold : volt (constant)", "R_series : ohm (constant)"]
+    elif inputs.stimulus:
+        drive.append("I_stim")
+        lines.append(f"I_stim = ({inputs.stimulus})*amp : amp")
+    if inputs.noise:
+        ts = inputs.sweep_time
+        terms = []
+        for n in inputs.noise:
+            k = n.index
+            window = f"int({ts} >= noise_start_{k} and {ts} < noise_stop_{k})"
+            if n.conductance:
+                terms.append(f"noise_{k}*int(noise_{k} > 0*siemens)*(noise_E_{k} - v)*{window}")
+                lines.append(f"noise_{k} : siemens")
+            else:
+                terms.append(f"noise_{k}*{window}")
+                lines.append(f"noise_{k} : amp")
+        lines.append("I_noise = " + " + ".join(terms) + " : amp")
+        drive.append("I_noise")
+    return drive, lines
+
+
+def load_conductances(inputs: CellInputs) -> list[str]:
+    """Conductances besides gL and the receptors that forward Euler must follow (clamp, noise)."""
+    out = ["1/R_series"] if inputs.clamp else []
+    out += [f"abs(noise_{n.index})" for n in inputs.noise if n.conductance]
+    return out
+
+
+def adex_equations(receptors: list[ReceptorTerm], inputs: CellInputs, release_vars: list[str],
+                   *, linear: bool = False) -> str:
     """Brian2 equations of an AdEx cell with per-neuron conductances (one set per receptor).
 
     Args:
         receptors: conductances that synapses onto this cell use.
-        stimulus: the expression of the injected stimulus current, or None without stimulus.
+        inputs: stimulus, clamp and noise (:func:`input_equations`).
         release_vars: suffixes of per-cell release accumulators (one per recorded synapse).
+        linear: write the membrane equation linear in v for the exponential Euler method: the
+            exponential spike current (``I_exp``) and the magnesium block (``B_<r>``) become
+            variables refreshed at the start of each step (:func:`adex_linear_update`).
 
     Returns:
-        Equation text; constants ``E_<r>``, ``scale_<r>``, the stimulus library and the sweep
-        interval come from the group's namespace.
+        Equation text; constants ``E_<r>``, ``scale_<r>``, the stimulus library, the noise
+        constants and the sweep interval come from the group's namespace.
     """
-    drive = ["gL*(EL - v)", "gL*DeltaT*exp((v - VT)/DeltaT)", "- w", "I_hold"]
-    if stimulus is not None:
-        drive.append("I_stim")
+    extra_drive, extra_lines = input_equations(inputs)
+    spike = "I_exp" if linear else "gL*DeltaT*exp((v - VT)/DeltaT)"
+    drive = ["gL*(EL - v)", spike, "- w", "I_hold"] + extra_drive
     if receptors:
         drive.append("I_syn")
     lines = [
@@ -206,23 +281,28 @@ def adex_equations(receptors: list[ReceptorTerm], stimulus: str | None,
         "dw/dt = (a*(v - EL) - w)/tau_w : amp",
         "I_hold : amp (constant)",
     ]
-    if stimulus is not None:
-        lines.append(f"I_stim = {stimulus} : amp")
-        lines.append("stim_index : integer (constant)")
+    if linear:
+        lines.append("I_exp : amp")
+    lines += extra_lines
     if receptors:
         terms = []
         for r in receptors:
             term = f"g_{r.suffix}*scale_{r.suffix}*(E_{r.suffix} - v)"
-            if r.mg_block:
+            if r.mg_block and linear:
+                term = f"g_{r.suffix}*scale_{r.suffix}*B_{r.suffix}*(E_{r.suffix} - v)"
+            elif r.mg_block:
                 term += (f"/(1 + exp(-{MG_SLOPE_PER_MV}*v/mV)*Mg/({MG_HALF_MM}*mmolar))")
             terms.append(term)
         lines.append("I_syn = " + " + ".join(terms) + " : amp")
         for r in receptors:
             lines.append(f"g_{r.suffix} : siemens")
             lines.append(f"x_{r.suffix} : siemens/second")
-        lines.append("euler_load : 1")
+            if r.mg_block and linear:
+                lines.append(f"B_{r.suffix} : 1")
         if any(r.mg_block for r in receptors):
             lines.append("Mg : mmolar (shared)")
+    if not linear and (receptors or load_conductances(inputs)):
+        lines.append("euler_load : 1")
     for name in ADEX_PARAMS:
         lines.append(f"{name} : {ADEX_UNITS[name]} (constant)")
     for s in release_vars:
@@ -231,10 +311,11 @@ def adex_equations(receptors: list[ReceptorTerm], stimulus: str | None,
     return "\n".join(lines)
 
 
-def conductance_update(receptors: list[ReceptorTerm]) -> str:
+def conductance_update(receptors: list[ReceptorTerm], extra_conductances: tuple[str, ...] | list[str] = ()) -> str:
     """Code that advances every conductance by one exact step (propagators from the namespace).
 
-    It also keeps ``euler_load``, the largest ``dt*(gL + total synaptic conductance)/C`` seen:
+    It also keeps ``euler_load``, the largest ``dt*(gL + total conductance)/C`` seen, the total
+    counting the receptors and ``extra_conductances`` (a clamp's 1/Rs, conductance noise):
     forward Euler overshoots the reversal potentials once it reaches 1 (the reset then hides
     the runaway, so the engine checks this number after the run).
     """
@@ -247,10 +328,77 @@ def conductance_update(receptors: list[ReceptorTerm]) -> str:
         lines.append(f"g_{s} = P_gg_{s}*g_{s} + P_gx_{s}*x_{s}")
         lines.append(f"g_{s} = g_{s}*int(abs(g_{s}) > {NEGLIGIBLE_SI}*siemens)")
         lines.append(f"x_{s} = P_xx_{s}*x_{s}*int(abs(x_{s}) > {NEGLIGIBLE_SI}*siemens/second)")
-    total = " + ".join(["gL"] + [f"abs(g_{r.suffix}*scale_{r.suffix})" for r in receptors])
+    total = " + ".join(["gL"] + [f"abs(g_{r.suffix}*scale_{r.suffix})" for r in receptors]
+                       + list(extra_conductances))
     lines.append(f"load_now = ({total})*dt/C")
     lines.append("euler_load = euler_load + (load_now - euler_load)*int(load_now > euler_load)")
     return "\n".join(lines)
+
+
+def adex_linear_update(receptors: list[ReceptorTerm]) -> str:
+    """Start-of-step code of an AdEx cell written linear in v: the conductances advance as in
+    :func:`hh_conductance_update` (with the magnesium block refreshed) and the exponential spike
+    current is evaluated at the step's starting potential, which exponential Euler holds fixed
+    over the step like every other coefficient."""
+    code = hh_conductance_update(receptors)
+    return (code + "\n" if code else "") + "I_exp = gL*DeltaT*exp((v - VT)/DeltaT)"
+
+
+def noise_update(noise: tuple[NoiseTerm, ...] | list[NoiseTerm]) -> str:
+    """Start-of-step code advancing each Ornstein-Uhlenbeck input by one exact step.
+
+    ``n <- mean + (n - mean) e^{-dt/tau} + sd sqrt(1 - e^{-2 dt/tau}) N(0, 1)`` is the exact
+    transition of dn = (mean - n)/tau dt + sd sqrt(2/tau) dW (Gillespie 1996, Phys Rev E
+    54:2084), so the stationary mean, SD and correlation time do not depend on the time step
+    or the cell's integration method. Constants ``noise_mean_k``, ``noise_decay_k`` and
+    ``noise_kick_k`` come from the namespace.
+    """
+    return "\n".join(f"noise_{n.index} = noise_mean_{n.index} + (noise_{n.index} - noise_mean_{n.index})"
+                     f"*noise_decay_{n.index} + noise_kick_{n.index}*randn()" for n in noise)
+
+
+def clamp_rest(model: str, params: dict[str, np.ndarray], v_hold, series, current
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """Steady state of a cell clamped at ``v_hold`` through the series resistance ``series``.
+
+    Solves ``I_ss(v) = current + (v_hold - v)/series`` (the cell's steady-state I-V curve, see
+    :func:`steady_state_current`, against the clamp's voltage divider) by bisection in the
+    narrowest bracket around ``v_hold`` (1, 2, 4 ... 128 mV wide on each side), so a fold of the
+    I-V curve far from the holding potential does not matter. For a passive cell this is
+    v = (v_hold + Rs*gL*EL)/(1 + Rs*gL).
+
+    Args:
+        model: "adex", "hh_cortical" or "hh_squid".
+        params: the role's parameters, arrays of shape (n,).
+        v_hold: command potential (V), scalar or (n,).
+        series: series resistance (Ohm), scalar or (n,).
+        current: other constant current injected (A), scalar or (n,).
+
+    Returns:
+        (v0, found): v0 is the steady potential where the bracket holds one, else ``v_hold``.
+    """
+    params = {k: np.asarray(val, dtype=float) for k, val in params.items()}
+    shape = params["EL"].shape
+    v_hold = np.broadcast_to(np.asarray(v_hold, dtype=float), shape)
+    series = np.broadcast_to(np.asarray(series, dtype=float), shape)
+    current = np.broadcast_to(np.asarray(current, dtype=float), shape)
+
+    def f(v):
+        with np.errstate(over="ignore", invalid="ignore"):
+            return steady_state_current(model, params, v) - current - (v_hold - v) / series
+
+    found = np.zeros(shape, dtype=bool)
+    lo, hi = v_hold.copy(), v_hold.copy()
+    for width in 1e-3 * 2.0 ** np.arange(8):
+        ok = ~found & (f(v_hold - width) < 0) & (f(v_hold + width) > 0)
+        lo, hi = np.where(ok, v_hold - width, lo), np.where(ok, v_hold + width, hi)
+        found |= ok
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        below = f(mid) < 0
+        lo = np.where(below, mid, lo)
+        hi = np.where(below, hi, mid)
+    return np.where(found, 0.5 * (lo + hi), v_hold), found
 
 
 def synapse_model(stochastic: bool, receptor_suffixes: list[str]) -> str:
@@ -687,7 +835,7 @@ def hh_slow_time_constants(model: str, params: dict[str, np.ndarray]) -> list[tu
 
 
 def hh_equations(model: str, channels: list[str], receptors: list[ReceptorTerm],
-                 stimulus: str | None, release_vars: list[str], exprel: str = "exprel") -> str:
+                 inputs: CellInputs, release_vars: list[str], exprel: str = "exprel") -> str:
     """Brian2 equations of a Hodgkin-Huxley cell (per-area currents on a membrane ``area``).
 
     Args:
@@ -696,7 +844,8 @@ def hh_equations(model: str, channels: list[str], receptors: list[ReceptorTerm],
         receptors: conductances that synapses onto this cell use. A magnesium block enters
             through ``B_<r>``, refreshed each step by :func:`hh_conductance_update`, so that
             the membrane equation stays linear in v for the exponential Euler method.
-        stimulus: the expression of the injected stimulus current, or None without stimulus.
+        inputs: stimulus, clamp and noise (:func:`input_equations`); every term is linear in
+            v, as exponential Euler needs.
         release_vars: suffixes of per-cell release accumulators (one per recorded synapse).
         exprel: the name the rates use for (exp(x) - 1)/x (the engine passes a faster
             stand-in for Brian2's own on the numpy target).
@@ -711,7 +860,8 @@ def hh_equations(model: str, channels: list[str], receptors: list[ReceptorTerm],
     if unknown:
         raise AssertionError(f"internal error: unknown channels {sorted(unknown)} for {model}")
     gate_names = [g for ch in used for g in ch.gates]
-    drive = ["I_hold"] + (["I_stim"] if stimulus is not None else []) + (["I_syn"] if receptors else [])
+    extra_drive, extra_lines = input_equations(inputs)
+    drive = ["I_hold"] + extra_drive + (["I_syn"] if receptors else [])
     lines = [
         "dv/dt = ((" + " + ".join(drive) + ")/area - i_ion)/c_m : volt",
         "i_ion = " + " + ".join(["g_leak*(v - EL)"] + [
@@ -746,9 +896,7 @@ def hh_equations(model: str, channels: list[str], receptors: list[ReceptorTerm],
             lines.append(f"{name} = {_rename(text, exprel)} : 1")
     for name in (p for p in MODEL_PARAMS[model] if p in names):
         lines.append(f"{name} : {_HH_UNITS[name]} (constant)")
-    if stimulus is not None:
-        lines.append(f"I_stim = {stimulus} : amp")
-        lines.append("stim_index : integer (constant)")
+    lines += extra_lines
     if receptors:
         terms = []
         for r in receptors:

@@ -12,17 +12,25 @@ import numpy as np
 
 @dataclass
 class Recordings:
-    """Voltage traces and spike times of one run.
+    """Traces and spike times of one run.
 
     Attributes:
         sample_dt: sampling interval of the traces (s).
         time: (n_samples,) sweep time of each sample (s), starting at 0.
-        traces: role -> (n_repeat, n_sweeps, n_samples) membrane potential (V), recorded roles only.
+        traces: role -> (n_repeat, n_sweeps, n_samples), recorded roles only: the membrane
+            potential (V) in current clamp; in voltage clamp the clamp current (A) the
+            amplifier passes into the cell, (V_cmd - v)/Rs, which at steady state equals the
+            cell's net membrane current, so inward currents (an EPSC at -70 mV) are negative.
+            ``meta["trace_units"]`` gives "V" or "A" per role.
         spikes: role -> list over repeats of list over sweeps of spike-time arrays (s, sweep time).
         release: synapse name -> (n_repeat, n_sweeps, n_spikes) released amount per presynaptic
             spike (number of sites released if stochastic, n_sites * u * R if deterministic);
             filled only when the engine is asked to record release.
-        meta: engine facts (target, wall time, layout, versions).
+        inputs: input name -> list over repeats of list over sweeps of event-time arrays (s,
+            sweep time, sorted): the events of each Poisson input (``<role>_poisson_<k>``) and
+            the source spikes of each extracellular activation (its plan name; one event per
+            activated source and activation time, before the synaptic delay).
+        meta: engine facts (target, wall time, layout, versions, trace units).
     """
 
     sample_dt: float
@@ -31,6 +39,7 @@ class Recordings:
     spikes: dict[str, list[list[np.ndarray]]]
     release: dict[str, np.ndarray] = field(default_factory=dict)
     meta: dict = field(default_factory=dict)
+    inputs: dict[str, list[list[np.ndarray]]] = field(default_factory=dict)
 
     @property
     def n_repeat(self) -> int:

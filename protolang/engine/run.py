@@ -108,7 +108,7 @@ def _describe(name: str, built: Built | None, plan: Plan) -> tuple[str, Any]:
     # longest names first, so "cell_pre_x_..." is not taken for role "pre"
     for (kind, ident), obj_name in sorted(names.items(), key=lambda item: -len(item[1])):
         if name == obj_name or name.startswith(obj_name + "_"):
-            word = "cell role" if kind == "role" else "synapse"
+            word = {"role": "cell role", "synapse": "synapse"}.get(kind, "extracellular activation")
             return f"{word} {ident!r}", span_of(plan, obj_name, ident)
     return f"simulation object {name!r}", span_of(plan, name)
 
@@ -139,6 +139,15 @@ def _where(cell: int, layout: Any) -> str:
     return f"repeat {cell}"
 
 
+def _trace_runaway(built: Built, role: str, raw_traces: dict[str, np.ndarray]) -> np.ndarray:
+    """Cells whose recorded trace left the physical range: a membrane potential beyond
+    :data:`MAX_PLAUSIBLE_V`, or (clamp currents) any undefined value."""
+    values = raw_traces[role]
+    if built.trace_units.get(role, "V") == "V":
+        return ~(np.abs(values) < MAX_PLAUSIBLE_V).all(axis=1)
+    return ~np.isfinite(values).all(axis=1)
+
+
 def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]) -> None:
     """Raise a ProtocolError naming the first cell whose integration ran away.
 
@@ -152,7 +161,7 @@ def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]
         v = np.asarray(group.v_)
         bad = ~(np.isfinite(v) & np.isfinite(np.asarray(group.w_)) & (np.abs(v) < MAX_PLAUSIBLE_V))
         if role in raw_traces and not bad.any():
-            bad = ~(np.abs(raw_traces[role]) < MAX_PLAUSIBLE_V).all(axis=1)
+            bad = _trace_runaway(built, role, raw_traces)
         if bad.any():
             cell = int(np.flatnonzero(bad)[0])
             raise error(f"numerical blow-up in {what} ({_where(cell, layout)}): the membrane "
@@ -185,7 +194,7 @@ def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]
         v = np.asarray(group.v_)
         bad = ~(np.isfinite(v) & (np.abs(v) < MAX_PLAUSIBLE_V))
         if role in raw_traces and not bad.any():
-            bad = ~(np.abs(raw_traces[role]) < MAX_PLAUSIBLE_V).all(axis=1)
+            bad = _trace_runaway(built, role, raw_traces)
         if bad.any():
             cell = int(np.flatnonzero(bad)[0])
             raise error(f"numerical blow-up in {what} ({_where(cell, layout)}): the membrane "
@@ -207,7 +216,9 @@ def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
         progress: optional callable receiving short stage messages.
 
     Returns:
-        Recordings with traces (recorded roles), spikes (every role), release (if asked) and meta.
+        Recordings with traces (recorded roles: membrane potential in V, or the clamp current in A
+        for voltage-clamped roles, as ``meta["trace_units"]`` says), spikes (every role), input
+        events (Poisson inputs and extracellular activation), release (if asked) and meta.
 
     Raises:
         ProtocolError: parameters the simulation cannot use, a numerical blow-up, or a failure
@@ -258,7 +269,8 @@ def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
             t2 = time.perf_counter()
         warnings = [f"{name}: {msg}" for level, name, msg in logs
                     if not any(w in str(msg) for w in _EXPECTED_WARNINGS)]
-        raw_traces = {role: np.asarray(mon.v_) for role, mon in built.trace_monitors.items()}
+        raw_traces = {role: np.asarray(getattr(mon, built.trace_variables[role] + "_"))
+                      for role, mon in built.trace_monitors.items()}
         _check_stability(built, plan, raw_traces)
         say("collecting recordings")
         recordings = _collect(plan, built, raw_traces, record_release)
@@ -315,6 +327,14 @@ def _collect(plan: Plan, built: Built, raw_traces: dict[str, np.ndarray],
             release[syn.name] = collect.release_table(
                 np.asarray(pre.i[:]), np.asarray(pre.t_[:]), np.asarray(mon.i[:]),
                 np.asarray(mon.t_[:]), np.asarray(getattr(mon, var + "_")), layout)
+    inputs: dict[str, list[list[np.ndarray]]] = {}
+    for key, (mon, cell_of_source) in built.input_monitors.items():
+        if mon is None:
+            inputs[key] = [[np.zeros(0) for _ in range(layout.n_sweeps)] for _ in range(layout.n_repeat)]
+            continue
+        cells = cell_of_source[np.asarray(mon.i[:], dtype=np.int64)]
+        inputs[key] = collect.split_spikes(cells, np.asarray(mon.t_[:]), layout)
     time_axis = np.arange(layout.n_samples) * layout.sample_dt
+    units = {role: built.trace_units[role] for role in traces}
     return Recordings(sample_dt=layout.sample_dt, time=time_axis, traces=traces, spikes=spikes,
-                      release=release)
+                      release=release, inputs=inputs, meta={"trace_units": units})
