@@ -148,6 +148,14 @@ class Experiment:
             t = time.perf_counter()
             plans.append(self.plan(k))
             timings["plan_s"] += time.perf_counter() - t
+        # the rheobase collector simulates test steps of its own: refuse bad ones before any run
+        searches = [any(m.collector == "rheobase" for m in plan.measures) for plan in plans]
+        if any(searches):
+            from .measure.rheobase import check_rheobase
+
+            for plan, wanted in zip(plans, searches):
+                if wanted:
+                    check_rheobase(plan)
         for note in plans[0].notes:
             say(note)
         say(f"layout: {plans[0].layout}: {plans[0].layout_reason}")
@@ -161,9 +169,17 @@ class Experiment:
             t1 = time.perf_counter()
             recordings = run_plan(plan, target=target, progress=say)
             timings["simulate_s"] += time.perf_counter() - t1
+            rheobase = None
+            if searches[k]:
+                from .measure.rheobase import measure_rheobase
+
+                say(f"{where}searching the rheobase")
+                t3 = time.perf_counter()
+                rheobase = measure_rheobase(plan, run_plan, target=target, progress=say)
+                timings["rheobase_s"] = timings.get("rheobase_s", 0.0) + time.perf_counter() - t3
             say(f"{where}collecting tables")
             t2 = time.perf_counter()
-            tables = collect(plan, recordings)
+            tables = collect(plan, recordings, rheobase=rheobase)
             timings["collect_s"] += time.perf_counter() - t2
             runs.append(PointRun(values=values, plan=plan, recordings=recordings, tables=tables))
         prov = provenance(self, plans[0], runs[0].recordings, timings)

@@ -476,7 +476,8 @@ def test_registry_matches_the_language_reference():
     # docs/language.md, measure section: defaults 40 ms, 2 ms, 0.05 mV, 3
     opts = COLLECTORS["responses"]["options"]
     assert opts == {"window": ("time", 0.040), "baseline": ("time", 0.002),
-                    "threshold": ("voltage", 0.05e-3), "noise_factor": ("number", 3.0)}
+                    "threshold": ("voltage", 0.05e-3), "noise_factor": ("number", 3.0),
+                    "current_threshold": ("current", 2e-12)}
     assert COLLECTORS["responses"]["needs_source"] and not COLLECTORS["spikes"]["needs_source"]
     assert COLLECTORS["spikes"]["options"] == {}
     doc = (REPO / "docs" / "language.md").read_text()

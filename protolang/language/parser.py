@@ -570,6 +570,7 @@ _MEASURE_OPTIONS = {
     "baseline": ("time", 0.0, False),
     "threshold": ("voltage", 0.0, True),
     "noise_factor": ("number", 0.0, False),
+    "current_threshold": ("current", 0.0, True),
     "low": ("current", None, True),
     "high": ("current", None, True),
     "tolerance": ("current", 0.0, False),

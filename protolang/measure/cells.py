@@ -11,6 +11,9 @@ Collectors (see docs/cell-measures.md for every definition):
   the pattern label from the highest step (common practice, no single source).
 * ``fi`` uses the step family: firing rate against step current per cell, the F-I slope
   over supra-threshold steps, and the lowest step that fires ("family rheobase").
+* ``rheobase`` needs no step in the protocol: it simulates test steps of its own
+  (:mod:`protolang.measure.rheobase`), and its rows (``rheobase_pA``, ``rheobase_rounds``,
+  ``rheobase_note``) are merged here into the cell's row.
 
 Tables: ``cell_sweeps`` (one row per cell and sweep), ``cells`` (one row per cell) and
 ``classes`` (mean, SD and n over the cells of each class; pattern counts).
@@ -26,7 +29,9 @@ import pandas as pd
 
 from . import cell as cf
 
-CELL_COLLECTORS = ("passive", "firing", "fi")
+STEP_COLLECTORS = ("passive", "firing", "fi")
+CELL_COLLECTORS = STEP_COLLECTORS + ("rheobase",)
+RHEOBASE_COLUMNS = ("rheobase_pA", "rheobase_rounds", "rheobase_note")
 
 
 def _amplitudes(seg_amp: float, per_sweep, n_sweeps: int) -> np.ndarray:
@@ -41,8 +46,41 @@ def _role_step(role, n_sweeps):
     return seg.start, seg.stop, _amplitudes(seg.amplitude, seg.per_sweep, n_sweeps)
 
 
-def collect_cells(plan, recordings, measures) -> dict[str, pd.DataFrame]:
-    """Run the cell collectors of ``measures`` (MeasurePlans) and build the three tables."""
+def _rheobase_rows(rheobase: pd.DataFrame | None, role_name: str, n_repeat: int) -> list[dict]:
+    """The rheobase collector's values for each repeat of ``role_name``."""
+    if rheobase is None:
+        raise AssertionError(f"internal error: role {role_name!r} has a rheobase measure but no rheobase rows "
+                             f"reached collect(); the rheobase collector simulates test steps, so pass "
+                             f"rheobase=protolang.measure.rheobase.measure_rheobase(plan, run_plan)")
+    mine = rheobase[rheobase["role"] == role_name]
+    by_repeat = {int(r["repeat"]): r for _, r in mine.iterrows()}
+    if sorted(by_repeat) != list(range(n_repeat)):
+        raise AssertionError(f"internal error: rheobase rows of role {role_name!r} cover repeats "
+                             f"{sorted(by_repeat)}, not 0..{n_repeat - 1}")
+    return [{"rheobase_pA": float(by_repeat[r]["rheobase_pA"]),
+             "rheobase_rounds": int(by_repeat[r]["rheobase_rounds"]),
+             "rheobase_note": str(by_repeat[r]["rheobase_note"])} for r in range(n_repeat)]
+
+
+def collect_cells(plan, recordings, measures, rheobase: pd.DataFrame | None = None) -> dict[str, pd.DataFrame]:
+    """Run the cell collectors of ``measures`` and build the ``cell_sweeps``, ``cells`` and ``classes`` tables.
+
+    Args:
+        plan: the plan (roles, steps, cell ids).
+        recordings: the run's recordings (current-clamp traces in V, spikes in s).
+        measures: the plan's MeasurePlans of the collectors in :data:`CELL_COLLECTORS`.
+        rheobase: rows of :func:`protolang.measure.rheobase.measure_rheobase` (columns
+            ``role``, ``repeat`` and :data:`RHEOBASE_COLUMNS`), needed when a measure is
+            ``rheobase``.
+
+    Returns:
+        ``{"cells": ..., "classes": ...}`` and ``"cell_sweeps"`` when a firing or F-I
+        collector ran.
+
+    Raises:
+        AssertionError: internal errors (a stepped collector on a cell without a step, a
+            rheobase measure without rheobase rows).
+    """
     by_role: dict[str, set[str]] = {}
     for m in measures:
         by_role.setdefault(m.cell, set()).add(m.collector)
@@ -50,9 +88,12 @@ def collect_cells(plan, recordings, measures) -> dict[str, pd.DataFrame]:
     dt = recordings.sample_dt
     for role_name, wanted in by_role.items():
         role = plan.role(role_name)
-        traces = recordings.traces[role_name]
-        n_repeat, n_sweeps, _ = traces.shape
-        onset, stop, amps = _role_step(role, n_sweeps)
+        n_repeat = plan.n_repeat
+        rheobase_rows = _rheobase_rows(rheobase, role_name, n_repeat) if "rheobase" in wanted else None
+        if wanted & set(STEP_COLLECTORS):
+            traces = recordings.traces[role_name]
+            n_repeat, n_sweeps, _ = traces.shape
+            onset, stop, amps = _role_step(role, n_sweeps)
         spikes = recordings.spikes.get(role_name)
         for rep in range(n_repeat):
             base = {"role": role_name, "cell_class": role.cell_class, "repeat": rep,
@@ -79,6 +120,8 @@ def collect_cells(plan, recordings, measures) -> dict[str, pd.DataFrame]:
                 row.update(_firing_summary(per_sweep))
             if "fi" in wanted:
                 row.update(_fi_summary(per_sweep))
+            if rheobase_rows is not None:
+                row.update(rheobase_rows[rep])
             cell_rows.append(row)
     tables = {"cells": pd.DataFrame(cell_rows)}
     if sweep_rows:
@@ -133,7 +176,7 @@ def _fi_summary(per_sweep: list) -> dict:
 
 def summarise_classes(cells: pd.DataFrame) -> pd.DataFrame:
     """Mean, SD and n over the cells of each class for every numeric column; pattern counts."""
-    skip = {"repeat", "cell_id", "passive_sweeps", "fi_points"}
+    skip = {"repeat", "cell_id", "passive_sweeps", "fi_points", "rheobase_rounds"}
     numeric = [c for c in cells.columns if c not in skip and pd.api.types.is_numeric_dtype(cells[c])]
     rows = []
     for cls, group in cells.groupby("cell_class", sort=True):

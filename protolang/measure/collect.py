@@ -6,16 +6,21 @@
 * ``responses``: one row per repeat x sweep x presynaptic event;
 * ``connections``: one row per tested pair (repeat) of a ``responses`` measure;
 * ``pathways``: one row per circuit pathway, mean / SD / n over its *connected* pairs;
-* ``spikes``: one row per repeat x sweep of each cell with a ``spikes`` measure.
+* ``spikes``: one row per repeat x sweep of each cell with a ``spikes`` measure;
+* ``cell_sweeps``, ``cells``, ``classes``: the cell collectors (:mod:`protolang.measure.cells`).
 
 The features are those of :mod:`protolang.measure.features` (definitions there);
-tables hold mV, ms, um, Hz as their column names say. Brian2 is never imported here.
+tables hold mV, pA, ms, um, Hz as their column names say. A voltage-clamped cell's trace
+is its clamp current (``recordings.meta["trace_units"][role] == "A"``, inward negative):
+its responses are postsynaptic currents measured with the same definitions, and every
+column that carries the trace's unit says pA instead of mV (``amplitude_pA``,
+``baseline_pA``, ``area_pA_ms``...). Brian2 is never imported here.
 """
 
 from __future__ import annotations
 
 import math
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -31,22 +36,78 @@ MV = 1e3    # V -> mV
 MS = 1e3    # s -> ms
 UM = 1e6    # m -> um
 
-RESPONSE_COLUMNS = [
-    "pathway", "synapse", "pre", "post", "repeat", "pre_id", "post_id", "connected", "sweep",
-    "event", "kind", "probe", "nominal_time_ms", "event_time_ms", "presynaptic_spike",
-    "extra_pre_spikes", "window_ms", "sign", "noise_sd_mV", "failure_level_mV", "baseline_mV",
-    "amplitude_mV", "failure", "latency_ms", "rise_20_80_ms", "time_to_peak_ms", "decay_tau_ms",
-    "area_mV_ms",
-]
 
-CONNECTION_COLUMNS = [
-    "pathway", "synapse", "pre", "post", "repeat", "pre_id", "post_id", "pre_class", "post_class",
-    "distance_um", "connected", "n_release_sites", "sign", "n_sweeps", "n_events",
-    "pre_spikes_missing", "extra_pre_spikes", "noise_sd_mV", "amplitude_mean_mV",
-    "amplitude_sd_mV", "cv", "failure_rate", "latency_ms", "rise_20_80_ms", "decay_tau_ms",
-    "decay_event", "ppr",
-]
-# then ratio_<k>_1 (train events 3...), recovery_ratio, event_<k>_amplitude_mV (every event)
+class TraceUnit(NamedTuple):
+    """How a recorded trace's unit appears in the tables.
+
+    Attributes:
+        si: the trace's SI unit as the engine states it ("V" or "A").
+        label: the unit in column names ("mV" or "pA").
+        scale: SI value -> table value.
+        floor_option: the ``responses`` option giving the failure threshold floor.
+    """
+
+    si: str
+    label: str
+    scale: float
+    floor_option: str
+
+
+TRACE_UNITS = {
+    "V": TraceUnit("V", "mV", 1e3, "threshold"),
+    "A": TraceUnit("A", "pA", 1e12, "current_threshold"),
+}
+
+
+def trace_unit(recordings: "Recordings", role: str) -> TraceUnit:
+    """The unit of ``role``'s trace: ``recordings.meta["trace_units"][role]``, volts when absent.
+
+    Args:
+        recordings: the run's recordings (an importer of real data sets ``meta`` the same way).
+        role: the recorded role.
+
+    Returns:
+        The :class:`TraceUnit`.
+
+    Raises:
+        AssertionError: the engine (or importer) named a unit other than "V" or "A".
+    """
+    unit = (recordings.meta or {}).get("trace_units", {}).get(role, "V")
+    if unit not in TRACE_UNITS:
+        raise AssertionError(f"internal error: trace of role {role!r} has unit {unit!r}; "
+                             f"the collectors read {', '.join(TRACE_UNITS)}")
+    return TRACE_UNITS[unit]
+
+
+def response_columns(label: str = "mV") -> list[str]:
+    """Columns of the ``responses`` table for traces whose unit shows as ``label`` ("mV" or "pA")."""
+    return [
+        "pathway", "synapse", "pre", "post", "repeat", "pre_id", "post_id", "connected", "sweep",
+        "event", "kind", "probe", "nominal_time_ms", "event_time_ms", "presynaptic_spike",
+        "extra_pre_spikes", "window_ms", "sign", f"noise_sd_{label}", f"failure_level_{label}",
+        f"baseline_{label}", f"amplitude_{label}", "failure", "latency_ms", "rise_20_80_ms",
+        "time_to_peak_ms", "decay_tau_ms", f"area_{label}_ms",
+    ]
+
+
+def connection_columns(label: str = "mV") -> list[str]:
+    """Fixed columns of the ``connections`` table for traces shown in ``label`` ("mV" or "pA").
+
+    Ratio columns ``ratio_<k>_1`` (train events 3...), ``recovery_ratio`` and per-event
+    ``event_<k>_amplitude_<label>`` follow them.
+    """
+    return [
+        "pathway", "synapse", "pre", "post", "repeat", "pre_id", "post_id", "pre_class", "post_class",
+        "distance_um", "connected", "n_release_sites", "sign", "n_sweeps", "n_events",
+        "pre_spikes_missing", "extra_pre_spikes", f"noise_sd_{label}", f"amplitude_mean_{label}",
+        f"amplitude_sd_{label}", "cv", "failure_rate", "latency_ms", "rise_20_80_ms", "decay_tau_ms",
+        "decay_event", "ppr",
+    ]
+
+
+RESPONSE_COLUMNS = response_columns("mV")
+CONNECTION_COLUMNS = connection_columns("mV")
+_AMPLITUDE_SUFFIXES = tuple(f"_amplitude_{u.label}" for u in TRACE_UNITS.values())
 
 PATHWAY_KEYS = ["pathway", "pre_class", "post_class", "n_pairs_tested", "n_pairs"]
 # then <metric>_mean, <metric>_sd, <metric>_n for every metric in _pathway_metrics()
@@ -55,28 +116,34 @@ SPIKE_COLUMNS = ["role", "cell_class", "repeat", "cell_id", "sweep", "n_spikes",
                  "rate_Hz"]
 
 
-def collect(plan: "Plan", recordings: "Recordings") -> dict[str, pd.DataFrame]:
+def collect(plan: "Plan", recordings: "Recordings",
+            rheobase: pd.DataFrame | None = None) -> dict[str, pd.DataFrame]:
     """Run every measure of ``plan`` on ``recordings``.
 
     Args:
         plan: the resolved plan (its ``measures`` say what to collect).
-        recordings: traces (V) and spike times (s) of the run.
+        recordings: traces (V, or A for voltage-clamped cells) and spike times (s) of the run.
+        rheobase: rows of the ``rheobase`` collector, which simulates test steps of its own
+            (:func:`protolang.measure.rheobase.measure_rheobase`); needed when the plan has a
+            ``rheobase`` measure, merged into the ``cells`` table.
 
     Returns:
         ``{table name: DataFrame}`` for the tables the plan's collectors produce
-        (``responses``, ``connections``, ``pathways``, ``spikes``); rows of several
-        measures feeding the same table are concatenated.
+        (``responses``, ``connections``, ``pathways``, ``spikes``, ``cell_sweeps``,
+        ``cells``, ``classes``); rows of several measures feeding the same table are
+        concatenated.
 
     Raises:
         AssertionError: an internal error (unknown collector or option, a measured cell
-            without traces, a source without a synapse): the front end checks these.
+            without traces, a source without a synapse, a rheobase measure without its
+            rows): the front end and :func:`protolang.api.Experiment.run` rule these out.
     """
     from .cells import CELL_COLLECTORS, collect_cells
 
     parts: dict[str, list[pd.DataFrame]] = {}
     cell_measures = [m for m in plan.measures if m.collector in CELL_COLLECTORS]
     if cell_measures:
-        for name, table in collect_cells(plan, recordings, cell_measures).items():
+        for name, table in collect_cells(plan, recordings, cell_measures, rheobase=rheobase).items():
             parts.setdefault(name, []).append(table)
     for measure in plan.measures:
         if measure.collector in CELL_COLLECTORS:
@@ -193,18 +260,22 @@ def collect_responses(plan: "Plan", recordings: "Recordings",
         plan: the plan; ``measure.cell`` is the postsynaptic role, ``measure.source`` the
             presynaptic one.
         recordings: the run's recordings.
-        measure: the measure (options in SI: window, baseline, threshold, noise_factor).
+        measure: the measure (options in SI: window, baseline, threshold, current_threshold,
+            noise_factor). The failure floor is ``threshold`` (V) for a membrane-potential
+            trace and ``current_threshold`` (A) for a clamp-current trace (see
+            :func:`trace_unit`).
 
     Returns:
-        ``(responses, connections)`` DataFrames (columns: :data:`RESPONSE_COLUMNS`,
-        :data:`CONNECTION_COLUMNS` plus ratio and per-event amplitude columns).
+        ``(responses, connections)`` DataFrames (columns: :func:`response_columns`,
+        :func:`connection_columns` plus ratio and per-event amplitude columns), in mV for a
+        membrane-potential trace and pA for a clamp current.
 
     Raises:
         AssertionError: internal errors (see :func:`collect`).
     """
     opts = _options(measure)
     window, baseline = opts["window"], opts["baseline"]
-    threshold, noise_factor = opts["threshold"], opts["noise_factor"]
+    noise_factor = opts["noise_factor"]
     if measure.source is None:
         raise AssertionError("internal error: a responses measure without a source reached collect()")
     post = _role(plan, measure.cell)
@@ -212,6 +283,10 @@ def collect_responses(plan: "Plan", recordings: "Recordings",
     syn = _synapse(plan, pre.name, post.name)
     if post.name not in recordings.traces:
         raise AssertionError(f"internal error: role {post.name!r} is measured but has no recorded trace")
+    # A clamp current is measured like a potential; only the unit and the floor differ.
+    unit = trace_unit(recordings, post.name)
+    u, scale = unit.label, unit.scale
+    threshold = opts[unit.floor_option]
     traces = np.asarray(recordings.traces[post.name], dtype=float)
     dt = float(recordings.sample_dt)
     t0 = float(recordings.time[0]) if len(recordings.time) else 0.0
@@ -257,12 +332,12 @@ def collect_responses(plan: "Plan", recordings: "Recordings",
                     **base_row, "sweep": s, "event": ev.index, "kind": ev.kind, "probe": bool(ev.probe),
                     "nominal_time_ms": ev.time * MS, "event_time_ms": times[s, k] * MS,
                     "presynaptic_spike": has_spike, "extra_pre_spikes": extra,
-                    "window_ms": f.window * MS, "sign": int(sign), "noise_sd_mV": noise * MV,
-                    "failure_level_mV": level * MV, "baseline_mV": f.baseline * MV,
-                    "amplitude_mV": f.amplitude * MV, "failure": f.failure if f.measured else None,
+                    "window_ms": f.window * MS, "sign": int(sign), f"noise_sd_{u}": noise * scale,
+                    f"failure_level_{u}": level * scale, f"baseline_{u}": f.baseline * scale,
+                    f"amplitude_{u}": f.amplitude * scale, "failure": f.failure if f.measured else None,
                     "latency_ms": f.latency * MS, "rise_20_80_ms": f.rise_20_80 * MS,
                     "time_to_peak_ms": f.time_to_peak * MS, "decay_tau_ms": f.decay_tau * MS,
-                    "area_mV_ms": f.area * MV * MS,
+                    f"area_{u}_ms": f.area * scale * MS,
                 })
         metrics = F.connection_metrics(amp, fail, lat, rise, probe=probe)
         k_decay = _decay_event(stops, times, probe) if nominal.size else None
@@ -280,9 +355,9 @@ def collect_responses(plan: "Plan", recordings: "Recordings",
             "n_sweeps": metrics["n_sweeps"], "n_events": int(nominal.size),
             "pre_spikes_missing": int(np.count_nonzero(~np.isfinite(times))),
             "extra_pre_spikes": extra_total,
-            "noise_sd_mV": _nanmedian(noises) * MV,
-            "amplitude_mean_mV": _at(metrics["amplitude_mean"], metrics["first"]) * MV,
-            "amplitude_sd_mV": _at(metrics["amplitude_sd"], metrics["first"]) * MV,
+            f"noise_sd_{u}": _nanmedian(noises) * scale,
+            f"amplitude_mean_{u}": _at(metrics["amplitude_mean"], metrics["first"]) * scale,
+            f"amplitude_sd_{u}": _at(metrics["amplitude_sd"], metrics["first"]) * scale,
             "cv": metrics["cv"], "failure_rate": metrics["failure_rate"],
             "latency_ms": metrics["latency"] * MS, "rise_20_80_ms": metrics["rise_20_80"] * MS,
             "decay_tau_ms": tau * MS,
@@ -293,14 +368,14 @@ def collect_responses(plan: "Plan", recordings: "Recordings",
             row[f"ratio_{events[k].index}_{events[train[0]].index}"] = float(metrics["ratios"][k])
         row["recovery_ratio"] = metrics["recovery_ratio"]
         for k, ev in enumerate(events):
-            row[f"event_{ev.index}_amplitude_mV"] = float(metrics["amplitude_mean"][k]) * MV
+            row[f"event_{ev.index}_amplitude_{u}"] = float(metrics["amplitude_mean"][k]) * scale
         connection_rows.append(row)
 
-    responses = pd.DataFrame(response_rows, columns=RESPONSE_COLUMNS)
+    responses = pd.DataFrame(response_rows, columns=response_columns(u))
     responses["failure"] = responses["failure"].astype("boolean")
     connections = pd.DataFrame(connection_rows)
     if connections.empty:
-        connections = pd.DataFrame(columns=CONNECTION_COLUMNS)
+        connections = pd.DataFrame(columns=connection_columns(u))
     connections["decay_event"] = connections["decay_event"].astype("Int64")
     return responses, connections
 
@@ -327,9 +402,12 @@ def _order_connection_columns(df: pd.DataFrame) -> pd.DataFrame:
         return int(col.split("_")[1])
 
     ratios = sorted((c for c in df.columns if c.startswith("ratio_")), key=event_number)
-    amps = sorted((c for c in df.columns if c.startswith("event_") and c.endswith("_amplitude_mV")),
-                  key=event_number)
-    order = [c for c in CONNECTION_COLUMNS if c in df.columns] + ratios
+    amps = sorted((c for c in df.columns if c.startswith("event_") and c.endswith(_AMPLITUDE_SUFFIXES)),
+                  key=lambda c: (event_number(c), c))
+    # each unit-carrying column in its place, once per trace unit
+    fixed = [c.replace("_mV", f"_{u.label}") for c in connection_columns("mV")
+             for u in (TRACE_UNITS.values() if "_mV" in c else [TRACE_UNITS["V"]])]
+    order = [c for c in fixed if c in df.columns] + ratios
     order += ["recovery_ratio"] if "recovery_ratio" in df.columns else []
     order += amps
     rest = [c for c in df.columns if c not in order]
@@ -337,11 +415,12 @@ def _order_connection_columns(df: pd.DataFrame) -> pd.DataFrame:
 
 
 def _pathway_metrics(connections: pd.DataFrame) -> list[str]:
-    fixed = ["distance_um", "n_release_sites", "amplitude_mean_mV", "amplitude_sd_mV", "cv", "failure_rate",
+    amplitudes = [f"amplitude_{k}_{u.label}" for u in TRACE_UNITS.values() for k in ("mean", "sd")]
+    fixed = ["distance_um", "n_release_sites", *amplitudes, "cv", "failure_rate",
              "latency_ms", "rise_20_80_ms", "decay_tau_ms", "ppr"]
     extra = [c for c in connections.columns
              if c.startswith("ratio_") or c == "recovery_ratio"
-             or (c.startswith("event_") and c.endswith("_amplitude_mV"))]
+             or (c.startswith("event_") and c.endswith(_AMPLITUDE_SUFFIXES))]
     return [c for c in fixed if c in connections.columns] + extra
 
 

@@ -3,6 +3,12 @@
 The front end imports this to check collector and option names, so it imports nothing
 (no numpy, pandas or Brian2); :mod:`protolang.measure.collect` reads the defaults from
 here, so the language reference and the collectors cannot drift apart.
+
+Keys of an entry: ``needs_source`` (``COLLECTOR to SOURCE``), ``needs_recording`` (the cell
+must be recorded; default: as ``needs_source``), ``needs_step`` (the kind of current step
+the protocol must give the cell), ``needs_engine`` (the collector simulates experiments of
+its own, so it cannot run on imported recordings), ``options`` (name -> (dimension, SI
+default)), ``tables`` and ``description``.
 """
 
 from __future__ import annotations
@@ -15,13 +21,16 @@ COLLECTORS: dict[str, dict] = {
             "window": ("time", 0.040),
             # baseline window before each presynaptic spike
             "baseline": ("time", 0.002),
-            # failure threshold floor
+            # failure threshold floor of a membrane-potential trace (current clamp)
             "threshold": ("voltage", 0.05e-3),
-            # failure threshold = max(noise_factor x baseline noise SD, threshold)
+            # failure threshold floor of a clamp-current trace (voltage clamp)
+            "current_threshold": ("current", 2e-12),
+            # failure threshold = max(noise_factor x baseline noise SD, floor)
             "noise_factor": ("number", 3.0),
         },
         "tables": ["responses", "connections", "pathways"],
-        "description": "postsynaptic responses to the spikes of SOURCE: per response, per connection, per pathway",
+        "description": "postsynaptic responses to the spikes of SOURCE: per response, per connection, per "
+                       "pathway (potentials in current clamp, clamp currents in voltage clamp)",
     },
     "spikes": {
         "needs_source": False,
@@ -54,6 +63,25 @@ COLLECTORS: dict[str, dict] = {
         "options": {},
         "tables": ["cell_sweeps", "cells", "classes"],
         "description": "firing rate against step current over a family of steps; F-I slope; lowest step that fires",
+    },
+    "rheobase": {
+        "needs_source": False,
+        "needs_recording": True,
+        "needs_engine": True,
+        "options": {
+            # search bracket: the low end must not fire, the high end must
+            "low": ("current", 0.0),
+            "high": ("current", 1e-9),
+            # largest width of the final bracket
+            "tolerance": ("current", 5e-12),
+            # duration of the square test step (from 100 ms into a test sweep)
+            "width": ("time", 0.5),
+            # search rounds after the bracket check; sets how many currents each round tests
+            "rounds": ("number", 3.0),
+        },
+        "tables": ["cells", "classes"],
+        "description": "smallest step current that makes the cell fire, found by simulated test steps "
+                       "(many currents per round, all cells at once); no step needed in the protocol",
     },
 }
 

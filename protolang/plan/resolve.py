@@ -391,6 +391,12 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             if roles_stim[post].spikes is not None:
                 notes_extra.append(f"{pre} -> {post} left out: {post} fires at explicit times and has no membrane")
                 continue
+            measured = any(m.source == pre and b.cell == post for b in protocol.measures for m in b.items)
+            live = [r for r, w in pw.receptors.items() if w > 0 and cond["blocks"].get(r, 0.0) < 1.0]
+            if not live and not measured:
+                # every receptor of the pathway is fully blocked: the synapse carries no current
+                notes_extra.append(f"{pre} -> {post} left out: all its receptors are blocked")
+                continue
             pre_ids, post_ids = selection.ids[pre], selection.ids[post]
             connected = instance.connected(pre_ids, post_ids)
             cp = instance.connection_params(pre_ids, post_ids)

@@ -18,6 +18,7 @@ from .write import _json_default, _new_figure, _save_figure, _write_text, write_
 # (table, column, axis label) of the measures plotted against a scanned value.
 SCAN_MEASURES = (
     ("pathways", "amplitude_mean_mV_mean", "first response amplitude (mV)"),
+    ("pathways", "amplitude_mean_pA_mean", "first response amplitude (pA)"),
     ("pathways", "ppr_mean", "paired-pulse ratio"),
     ("pathways", "failure_rate_mean", "failure rate of the first response"),
     ("pathways", "cv_mean", "CV of the first response"),

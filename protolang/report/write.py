@@ -193,11 +193,21 @@ def write_figures(fig_dir: str | os.PathLike, plan: "Plan", recordings: "Recordi
     return written
 
 
+# Unit of the amplitude columns -> (SI trace to that unit, what the trace is).
+_TRACE_SCALE = {"mV": (MV, "membrane potential"), "pA": (1e12, "clamp current")}
+
+
+def _unit(group: "pd.DataFrame") -> str:
+    """Unit of the pathway's amplitude columns: pA for clamp currents (voltage clamp), else mV."""
+    col = "amplitude_mean_pA"
+    return "pA" if col in group.columns and group[col].notna().any() else "mV"
+
+
 def _example_row(group: "pd.DataFrame"):
     """The connected pair whose mean first amplitude is nearest the pathway's median."""
     linked = group[group["connected"].astype(bool)]
     pool = linked if len(linked) else group
-    amps = pool["amplitude_mean_mV"].to_numpy(dtype=float)
+    amps = pool[f"amplitude_mean_{_unit(group)}"].to_numpy(dtype=float)
     if not np.isfinite(amps).any():
         return pool.iloc[0]
     med = float(np.nanmedian(amps))
@@ -209,7 +219,9 @@ def _sweeps_figure(plan, recordings, group, resp, pathway):
     pre, post = str(ex["pre"]), str(ex["post"])
     if post not in recordings.traces:
         return None
-    traces = np.asarray(recordings.traces[post], dtype=float) * MV
+    unit = _unit(group)
+    scale, quantity = _TRACE_SCALE[unit]
+    traces = np.asarray(recordings.traces[post], dtype=float) * scale
     t = np.asarray(recordings.time, dtype=float) * MS
     try:
         nominal = np.array(sorted(e.time for e in plan.role(pre).events), dtype=float) * MS
@@ -233,7 +245,7 @@ def _sweeps_figure(plan, recordings, group, resp, pathway):
         ax_ex.plot(t[view], sweep[view], color="0.78", lw=0.5)
     ax_ex.plot(t[view], sweeps.mean(axis=0)[view], color="black", lw=1.3, label=f"average of {len(sweeps)} sweeps")
     ax_ex.set_title(f"{pathway}\nexample pair {ex['pre_id']} -> {ex['post_id']} (repeat {ex['repeat']})", fontsize=9)
-    ax_ex.set_ylabel(f"{post} membrane potential (mV)")
+    ax_ex.set_ylabel(f"{post} {quantity} ({unit})")
 
     same = group[(group["pre"] == pre) & (group["post"] == post) & group["connected"].astype(bool)]
     averages = []
@@ -249,7 +261,7 @@ def _sweeps_figure(plan, recordings, group, resp, pathway):
             ax_mean.fill_between(t[view], (mean - sd)[view], (mean + sd)[view], color="0.8", lw=0,
                                  label="± SD")
     ax_mean.set_title(f"mean of sweep averages over connected pairs (n = {len(averages)})", fontsize=9)
-    ax_mean.set_ylabel("change from baseline (mV)")
+    ax_mean.set_ylabel(f"change from baseline ({unit})")
     for ax in (ax_ex, ax_mean):
         for tn in nominal:
             ax.axvline(tn, color="tab:red", lw=0.6, alpha=0.5)
@@ -260,6 +272,7 @@ def _sweeps_figure(plan, recordings, group, resp, pathway):
 
 
 def _summary_figure(group, resp, pathway):
+    unit = _unit(group)
     linked = group[group["connected"].astype(bool)]
     events = resp[["event", "probe"]].drop_duplicates().sort_values("event")
     train = [int(e) for e, p in zip(events["event"], events["probe"]) if not bool(p)]
@@ -275,7 +288,7 @@ def _summary_figure(group, resp, pathway):
         else:
             col, label = f"ratio_{e}_{train[0]}", str(e)
         if col is None:
-            vals = np.ones(int(np.isfinite(linked["amplitude_mean_mV"].to_numpy(dtype=float)).sum()))
+            vals = np.ones(int(np.isfinite(linked[f"amplitude_mean_{unit}"].to_numpy(dtype=float)).sum()))
         elif col in linked:
             vals = linked[col].to_numpy(dtype=float)
             vals = vals[np.isfinite(vals)]
@@ -296,11 +309,11 @@ def _summary_figure(group, resp, pathway):
     ax_bar.set_ylabel("amplitude / amplitude of response 1\n(mean ± SD over connections)")
     ax_bar.set_title(f"{pathway}: normalised amplitude, n = {len(linked)} connections", fontsize=9)
 
-    amp = linked["amplitude_mean_mV"].to_numpy(dtype=float)
+    amp = linked[f"amplitude_mean_{unit}"].to_numpy(dtype=float)
     cv = linked["cv"].to_numpy(dtype=float)
     ok = np.isfinite(amp) & np.isfinite(cv)
     ax_cv.scatter(amp[ok], cv[ok], s=14, color="black")
-    ax_cv.set_xlabel("mean amplitude of response 1 (mV)")
+    ax_cv.set_xlabel(f"mean amplitude of response 1 ({unit})")
     ax_cv.set_ylabel("CV of response 1")
     ax_cv.set_title(f"CV against amplitude, n = {int(ok.sum())}", fontsize=9)
     for ax in (ax_bar, ax_cv):
