@@ -23,6 +23,7 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(PY) bench/paired_train.py
+	$(PY) bench/characterise.py
 
 clean:
 	rm -rf $(VENV) .cache runs
