@@ -164,3 +164,18 @@ def test_cannot_hold_above_firing(tmp_path):
     with pytest.raises(ProtocolError) as info:
         protolang.load(tmp_path / "h.protocol").plan()
     assert "cannot be held at -20 mV" in str(info.value)
+
+
+def test_fast_voltage_clamp_is_flagged_in_the_plan(tmp_path):
+    # forward Euler diverges when Rs*C/(1 + Rs*gL) is shorter than ~2 steps (numerical analysis,
+    # common practice); the plan says which integrator the clamped cell gets and why
+    src = BASE.format(circuit=str(DEMO / "slab.circuit.yaml"), ca="2.0", pre_class="pyramidal_deep",
+                      dist=150, repeat=2, interval=10).replace(
+        "record post: current clamp, holding -70 mV", "record post: voltage clamp, holding -70 mV, series 0.2 MOhm")
+    (tmp_path / "vc.protocol").write_text(src)
+    plan = protolang.load(tmp_path / "vc.protocol").plan()
+    post = plan.role("post")
+    tau = 0.2e6 * post.params["C"] / (1 + 0.2e6 * post.params["gL"])
+    assert tau.min() < 4 * plan.dt
+    assert any("exponential Euler" in n for n in plan.notes)
+    assert post.series_resistance == pytest.approx(0.2e6)
