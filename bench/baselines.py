@@ -133,7 +133,11 @@ def _build_pair_network(b2, plan, idx, settle=True):
     S.q = syn.site_conductance[rep] * b2.siemens
     S.delay = syn.delay[rep] * b2.second
     M = b2.StateMonitor(G_post, "v", record=True, dt=plan.sample_dt * b2.second, name="bench_mon")
-    return b2.Network(G_pre, G_post, S, M), M
+    objects = [G_pre, G_post, S, M]
+    if pre.recorded:
+        # the protocol records the presynaptic cell too: the same work means the same recordings
+        objects.append(b2.StateMonitor(G_pre, "v", record=True, dt=plan.sample_dt * b2.second, name="bench_mon_pre"))
+    return b2.Network(*objects), M
 
 
 def expert(plan, target: str) -> tuple[float, np.ndarray]:
