@@ -16,7 +16,6 @@ from __future__ import annotations
 import argparse
 import os
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -29,19 +28,7 @@ sys.path.insert(0, str(ROOT))
 import cell_baselines  # noqa: E402
 
 import protolang  # noqa: E402
-
-
-def protolang_run(plan, target):
-    """Simulate and collect, as Experiment.run does (without writing a run folder)."""
-    from protolang.engine import run_plan
-    from protolang.measure.collect import collect
-
-    t0 = time.perf_counter()
-    rec = run_plan(plan, target=target)
-    t1 = time.perf_counter()
-    tables = collect(plan, rec)
-    t2 = time.perf_counter()
-    return t2 - t0, t1 - t0, t2 - t1, tables
+from common import protolang_run  # noqa: E402
 
 
 def class_rates(plan, rates_by_role):

@@ -27,18 +27,7 @@ sys.path.insert(0, str(ROOT))
 import baselines  # noqa: E402
 
 import protolang  # noqa: E402
-
-
-def protolang_run(plan, target):
-    """(simulate + collect seconds, simulate seconds, tables)."""
-    from protolang.engine import run_plan
-    from protolang.measure.collect import collect
-
-    t0 = time.perf_counter()
-    rec = run_plan(plan, target=target)
-    t1 = time.perf_counter()
-    tables = collect(plan, rec)
-    return time.perf_counter() - t0, t1 - t0, tables
+from common import protolang_run  # noqa: E402
 
 
 def cold_check_seconds(path: Path) -> float:
@@ -75,7 +64,7 @@ def main() -> int:
 
     t_loop, amps_loop = baselines.loop(plan, args.target, args.loop_sweeps)
     t_expert, amps_expert = baselines.expert(plan, args.target)
-    t_ours, t_sim, tables = protolang_run(plan, args.target)
+    t_ours, t_sim, _, tables = protolang_run(plan, args.target)
     t_check = cold_check_seconds(Path(args.protocol))
 
     resp = tables["responses"]

@@ -163,13 +163,9 @@ def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]
         if role in raw_traces and not bad.any():
             bad = _trace_runaway(built, role, raw_traces)
         if bad.any():
-            cell = int(np.flatnonzero(bad)[0])
-            raise error(f"numerical blow-up in {what} ({_where(cell, layout)}): the membrane "
-                        f"potential left the physical range or became undefined", span,
-                        expected="parameters and conductances the time step can follow",
-                        hint=f"use a smaller time step than {plan.dt * 1e3:g} ms (e.g. "
-                             f"{plan.dt * 1e3 / 4:g} ms), or check C, gL, tau_w and the synaptic "
-                             f"conductances of this cell")
+            _raise_runaway(what, span, bad, layout,
+                           f"use a smaller time step than {plan.dt * 1e3:g} ms (e.g. {plan.dt * 1e3 / 4:g} ms), "
+                           f"or check C, gL, tau_w and the synaptic conductances of this cell")
         if "euler_load" not in group.variables:
             continue
         load = np.asarray(group.euler_load_)
@@ -196,12 +192,17 @@ def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]
         if role in raw_traces and not bad.any():
             bad = _trace_runaway(built, role, raw_traces)
         if bad.any():
-            cell = int(np.flatnonzero(bad)[0])
-            raise error(f"numerical blow-up in {what} ({_where(cell, layout)}): the membrane "
-                        f"potential left the physical range or became undefined", span,
-                        expected="parameters and conductances the time step can follow",
-                        hint=f"use a smaller time step than {plan.dt * 1e3:g} ms, or check the "
-                             f"membrane area, capacitance and conductances of this cell")
+            _raise_runaway(what, span, bad, layout,
+                           f"use a smaller time step than {plan.dt * 1e3:g} ms, or check the membrane area, "
+                           f"capacitance and conductances of this cell")
+
+
+def _raise_runaway(what: str, span, bad: np.ndarray, layout, hint: str):
+    """The one error for a membrane potential that left the physical range, at the first bad cell."""
+    cell = int(np.flatnonzero(bad)[0])
+    raise error(f"numerical blow-up in {what} ({_where(cell, layout)}): the membrane potential left the "
+                f"physical range or became undefined", span,
+                expected="parameters and conductances the time step can follow", hint=hint)
 
 
 def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
