@@ -59,6 +59,7 @@ class Experiment:
         self.path = path
         self.text = text
         self._circuit = None
+        self._instances: dict[int, object] = {}
 
     # -- front end ---------------------------------------------------------------
     @property
@@ -116,7 +117,16 @@ class Experiment:
         points = self.points()
         if not 0 <= point < len(points):
             raise IndexError(f"point {point} of {len(points)}")
-        return resolve(points[point][1], self.circuit, source_text=self.text)
+        protocol = points[point][1]
+        return resolve(protocol, self.circuit, self._instance(protocol.seed), source_text=self.text)
+
+    def _instance(self, seed: int):
+        """The instantiated circuit for ``seed``, built once: every scan point shares it."""
+        if seed not in self._instances:
+            from .circuit import instantiate
+
+            self._instances[seed] = instantiate(self.circuit, seed)
+        return self._instances[seed]
 
     # -- back end ----------------------------------------------------------------
     def run(self, out: str | os.PathLike | None = None, *, target: str = "auto",
