@@ -1137,13 +1137,15 @@ class _Lowering(Transformer):
         return False
 
     # --- stimuli -----------------------------------------------------------------------------
+    def _width_and_start(self, width, at, what: str, width_word: str) -> bool:
+        """Check a positive width and a start at or after 0; both are always checked."""
+        ok = self._quantity(width, "time", f"the {what} {width_word}", minimum=0.0, inclusive=False) is not None
+        return self._quantity(at, "time", f"the {what} start", minimum=0.0) is not None and ok
+
     def pulse(self, meta, children) -> ast.Pulse | None:
         amplitude, width, at = children
         ok = self._quantity(amplitude, "current", "the pulse amplitude") is not None
-        ok = self._quantity(width, "time", "the pulse width", minimum=0.0, inclusive=False) \
-            is not None and ok
-        ok = self._quantity(at, "time", "the pulse start", minimum=0.0) is not None and ok
-        if not ok:
+        if not self._width_and_start(width, at, "pulse", "width") or not ok:
             return None
         return ast.Pulse(amplitude=amplitude, duration=width, at=at, span=self._span(meta))
 
@@ -1259,10 +1261,7 @@ class _Lowering(Transformer):
     def step(self, meta, children) -> ast.Step | None:
         amplitude, width, at = children
         ok = self._drive(amplitude, "the step amplitude") is not None
-        ok = self._quantity(width, "time", "the step duration", minimum=0.0, inclusive=False) \
-            is not None and ok
-        ok = self._quantity(at, "time", "the step start", minimum=0.0) is not None and ok
-        if not ok:
+        if not self._width_and_start(width, at, "step", "duration") or not ok:
             return None
         return ast.Step(amplitude=amplitude, duration=width, at=at, span=self._span(meta))
 
