@@ -186,6 +186,15 @@ class Instance:
                 out[name] = np.where(found, values, np.nan)
         return out
 
+    def connections_at(self, index: np.ndarray) -> dict[str, np.ndarray]:
+        """Parameters of the stored connections at positions ``index`` (of ``pre``/``post``).
+
+        Returns:
+            The :data:`CONNECTION_FIELDS` arrays (n_sites int, the rest SI floats).
+        """
+        index = np.asarray(index, dtype=np.int64)
+        return {name: self._fields[name][index].copy() for name in CONNECTION_FIELDS}
+
     def targets_of(self, pre_id: int) -> np.ndarray:
         """Ids of all cells that ``pre_id`` connects to (ascending)."""
         lo = np.searchsorted(self._keys, int(pre_id) * self.n_cells)

@@ -75,6 +75,85 @@ class Cells:
     span: Span | None = _span()
 
 
+# --- lesions ------------------------------------------------------------------------
+@node
+class InLayer:
+    """``in layer deep``: cells whose soma lies in a layer of the circuit."""
+    layer: str
+    span: Span | None = _span()
+
+
+@node
+class Remove:
+    """``remove [F of] CLASS [in layer L] [within D of CELL]``: cells taken out of the circuit.
+
+    ``cell_class`` is a class name or ``"all"`` (every class); ``fraction`` None removes every
+    matching cell.
+    """
+    cell_class: str
+    fraction: Quantity | None = None
+    places: tuple = ()          # InLayer / Within, all must hold
+    span: Span | None = _span()
+    class_span: Span | None = _span()
+
+
+@node
+class Cut:
+    """``cut PRE -> POST``: every connection of the pathway removed."""
+    pre: str
+    post: str
+    span: Span | None = _span()
+
+
+@node
+class Silence:
+    """``silence CLASS``: the class's cells stay in the circuit and receive input but cannot fire."""
+    cell_class: str
+    span: Span | None = _span()
+
+
+@node
+class ScalePathway:
+    """``scale PRE -> POST by 50 %``: every connection's conductance multiplied."""
+    pre: str
+    post: str
+    factor: Quantity
+    span: Span | None = _span()
+
+
+# --- network (embedded mode) ------------------------------------------------------------
+@node
+class Region:
+    """One ``region`` line: ``all`` or places (InLayer / Within) that must all hold."""
+    everything: bool = False
+    places: tuple = ()
+    span: Span | None = _span()
+
+
+@node
+class Background:
+    """``background poisson R of G RECEPTOR onto ...`` or ``background noise mean M sd S tau T
+    [reversal E] onto ...``: ongoing drive of every simulated cell of the listed classes."""
+    kind: str                                  # "poisson" | "noise"
+    classes: tuple[str, ...]
+    rate: Quantity | None = None
+    conductance: Quantity | None = None
+    receptor: str | None = None
+    mean: Quantity | None = None
+    sd: Quantity | None = None
+    tau: Quantity | None = None
+    reversal: Quantity | None = None
+    span: Span | None = _span()
+
+
+@node
+class Network:
+    """The ``network:`` block: the recorded cells are simulated inside this subcircuit."""
+    regions: tuple[Region, ...]
+    background: tuple[Background, ...] = ()
+    span: Span | None = _span()
+
+
 # --- sweeps and simulation settings -------------------------------------------------
 @node
 class Sweeps:
@@ -314,6 +393,8 @@ class Protocol:
     stimuli: tuple[Stimulate, ...] = ()
     measures: tuple[Measure, ...] = ()
     scans: tuple[Scan, ...] = ()
+    lesions: tuple = ()
+    network: Network | None = None
     points: tuple[ScanPoint, ...] = field(default=(), compare=False, repr=False)
     file: str = field(default="<string>", compare=False)
     span: Span | None = _span()

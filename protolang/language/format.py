@@ -36,6 +36,10 @@ def format_protocol(p: ast.Protocol) -> str:
     if p.bath:
         sections.append(["bath:"] + [INDENT + _bath_item(item) for item in p.bath])
     sections.append(_cells(p.cells))
+    if p.lesions:
+        sections.append(["lesions:"] + [INDENT + lesion_text(item) for item in p.lesions])
+    if p.network is not None:
+        sections.append(_network(p.network))
     sections.append([_sweeps(p.sweeps)])
     if p.settings:
         sections.append(["simulate " + ", ".join(_setting(s) for s in p.settings)])
@@ -109,6 +113,46 @@ def _constraint(c) -> str:
     if isinstance(c, ast.ReceivingFrom):
         return f"receiving from {c.source}"
     raise ValueError(f"unknown cell constraint {c!r}")
+
+
+def place_text(place) -> str:
+    """One place of a `remove` or `region` line as canonical text."""
+    if isinstance(place, ast.InLayer):
+        return f"in layer {place.layer}"
+    return _constraint(place)
+
+
+def lesion_text(item) -> str:
+    """One `lesions:` line as canonical text (plan records quote it)."""
+    if isinstance(item, ast.Remove):
+        line = "remove "
+        if item.fraction is not None:
+            line += f"{_quantity(item.fraction)} of "
+        line += item.cell_class
+        return " ".join([line] + [place_text(p) for p in item.places])
+    if isinstance(item, ast.Cut):
+        return f"cut {item.pre} -> {item.post}"
+    if isinstance(item, ast.Silence):
+        return f"silence {item.cell_class}"
+    if isinstance(item, ast.ScalePathway):
+        return f"scale {item.pre} -> {item.post} by {_quantity(item.factor)}"
+    raise ValueError(f"unknown lesion {item!r}")
+
+
+def _network(net: ast.Network) -> list[str]:
+    lines = ["network:"]
+    for region in net.regions:
+        body = "all" if region.everything else " ".join(place_text(p) for p in region.places)
+        lines.append(f"{INDENT}region {body}")
+    for bg in net.background:
+        if bg.kind == "poisson":
+            drive = f"poisson {_quantity(bg.rate)} of {_quantity(bg.conductance)} {bg.receptor}"
+        else:
+            drive = f"noise mean {_quantity(bg.mean)} sd {_quantity(bg.sd)} tau {_quantity(bg.tau)}"
+            if bg.reversal is not None:
+                drive += f" reversal {_quantity(bg.reversal)}"
+        lines.append(f"{INDENT}background {drive} onto " + ", ".join(bg.classes))
+    return lines
 
 
 def _sweeps(s: ast.Sweeps) -> str:

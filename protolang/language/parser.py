@@ -549,6 +549,11 @@ class _Pick(NamedTuple):
     constraints: tuple
 
 
+class _Lesions(NamedTuple):
+    items: tuple
+    span: Span
+
+
 class _Reference(NamedTuple):
     """A cell name used outside ``cells:``, checked once every selected name is known."""
     name: str
@@ -561,7 +566,8 @@ _BATH_SETTINGS = {"calcium": ("concentration", "2.0 mM"), "magnesium": ("concent
                   "temperature": ("temperature", "34 degC")}
 # Bath temperatures a slice survives, in kelvin (0 to 45 degC).
 _TEMPERATURE_RANGE = (273.15, 318.15)
-_SETTINGS = {"isolated": None, "deterministic": None, "timestep": "time", "sampling": "frequency"}
+_SETTINGS = {"isolated": None, "embedded": None, "deterministic": None, "timestep": "time",
+             "sampling": "frequency", "memory": "memory"}
 _RECORD_MODES = ("current clamp", "voltage clamp", "off")
 _RECORD_OPTIONS = ("holding", "noise", "series")
 # Option name -> (dimension, smallest allowed value, whether the smallest is allowed).
@@ -578,7 +584,10 @@ _MEASURE_OPTIONS = {
     "rounds": ("number", 0.0, False),
     "step": ("current", None, True),
     "bin": ("time", 0.0, False),
+    "discard": ("time", 0.0, True),
 }
+# The name a `measure` block uses for the whole embedded network.
+NETWORK_TARGET = "network"
 # Most amplitudes a step family may list (it needs one sweep per amplitude).
 _MAX_FAMILY_VALUES = 1000
 # Dimension -> its name in a message ("needs a current or a voltage").
@@ -991,6 +1000,144 @@ class _Lowering(Transformer):
         return ast.Cells(picks=tuple(p.node for p in picks),
                          repeat=repeat.count if repeat else 1,
                          repeat_span=repeat.span if repeat else None, span=span)
+
+    # --- lesions ---------------------------------------------------------------------------
+    def in_layer(self, meta, children) -> ast.InLayer:
+        return ast.InLayer(layer=str(children[0]), span=self._span(meta))
+
+    def _places(self, places, span: Span) -> tuple:
+        layers = [p for p in places if isinstance(p, ast.InLayer)]
+        withins = [p for p in places if isinstance(p, _Constraint)]
+        for extra in layers[1:]:
+            self.c.fail("a second 'in layer' on one line", extra.span, expected="at most one layer per line",
+                        hint="write one line per layer")
+        for extra in withins[1:]:
+            self.c.fail("a second 'within' on one line", extra.node.span, expected="at most one distance per line",
+                        hint="keep the tighter distance")
+        for w in withins[:1]:
+            self.references.append(_Reference(w.node.of, w.name_span, "within ... of"))
+        return tuple(layers[:1]) + tuple(w.node for w in withins[:1])
+
+    def remove(self, meta, children):
+        fraction, name, *places = children
+        span = self._span(meta)
+        ok = True
+        if fraction is not None:
+            f = self._quantity(fraction, "percent", "the removed fraction", minimum=0.0, inclusive=False)
+            ok = f is not None
+            if f is not None and f > 1.0:
+                self.c.fail(f"the removed fraction cannot exceed 100 %, got {fraction}", fraction.span,
+                            expected="a percentage above 0 and at most 100",
+                            hint=f"'remove {name}' without a fraction removes every cell")
+                ok = False
+        places = self._places(places, span)
+        if not ok:
+            return None
+        return ast.Remove(cell_class=str(name), fraction=fraction, places=places, span=span,
+                          class_span=self._tspan(name))
+
+    def cut(self, meta, children):
+        pre, post = children
+        return ast.Cut(pre=str(pre), post=str(post), span=self._span(meta))
+
+    def silence(self, meta, children):
+        return ast.Silence(cell_class=str(children[0]), span=self._span(meta))
+
+    def scale_pathway(self, meta, children):
+        pre, post, factor = children
+        if isinstance(factor, Quantity) and factor.dimension not in ("percent", "number") \
+                and factor.unit in UNITS:
+            self.c.fail(f"a pathway scale factor is a percentage or a plain number, got {factor}", factor.span,
+                        expected="a percentage (e.g. 50 %) or a factor (e.g. 0.5)",
+                        hint=f"e.g. 'scale {pre} -> {post} by 50 %'")
+            return None
+        if isinstance(factor, Quantity) and not self._known_unit(factor, ("percent", "number")):
+            return None
+        if isinstance(factor, Quantity) and factor.si < 0:
+            self.c.fail(f"a pathway scale factor cannot be negative, got {factor}", factor.span,
+                        expected="a percentage, 0 % or more", hint="use 0 % to silence the pathway, or 'cut'")
+            return None
+        return ast.ScalePathway(pre=str(pre), post=str(post), factor=factor, span=self._span(meta))
+
+    def lesions(self, meta, children) -> _Lesions:
+        return _Lesions(tuple(c for c in children if c is not None), self._span(meta))
+
+    # --- network (embedded mode) -----------------------------------------------------------
+    def region(self, meta, children):
+        span = self._span(meta)
+        if len(children) == 1 and isinstance(children[0], Token) and children[0].type == "REGION_ALL":
+            return ast.Region(everything=True, span=span)
+        return ast.Region(places=self._places(children, span), span=span)
+
+    def background_poisson(self, meta, children):
+        rate, conductance, receptor = children
+        ok = self._quantity(rate, "frequency", "the background rate", minimum=0.0, inclusive=False) is not None
+        if receptor is None:
+            self.c.fail("background Poisson input needs a receptor after its conductance", conductance.span,
+                        expected="a receptor type of the circuit, e.g. AMPA",
+                        hint=f"e.g. 'background poisson {_shown(rate)} of 0.3 nS AMPA onto pyramidal_deep'")
+            return None
+        ok = self._quantity(conductance, "conductance", "the peak conductance per input spike",
+                            minimum=0.0, inclusive=False) is not None and ok
+        if not ok:
+            return None
+        return dict(kind="poisson", rate=rate, conductance=conductance, receptor=str(receptor))
+
+    def background_noise(self, meta, children):
+        mean, sd, tau, reversal = children
+        kinds = ("current", "conductance")
+        m = self._drive(mean, "the noise mean", kinds)
+        s = self._drive(sd, "the noise SD", kinds)
+        ok = m is not None and s is not None and self._same_kind("the noise", (mean, sd))
+        if s is not None and not self._not_negative(sd, s, "the noise SD"):
+            ok = False
+        ok = self._quantity(tau, "time", "the noise time constant", minimum=0.0,
+                            inclusive=False) is not None and ok
+        kind = mean.dimension if ok and isinstance(mean, Quantity) else None
+        if reversal is not None:
+            if self._quantity(reversal, "voltage", "the reversal potential") is None:
+                ok = False
+            elif kind == "current":
+                self.c.fail("a reversal potential applies only to conductance noise", reversal.span,
+                            expected="end of the noise part (current noise has no reversal potential)",
+                            hint="drop 'reversal ...', or give the mean and SD in nS")
+                ok = False
+        elif kind == "conductance":
+            self.c.fail("conductance noise needs a reversal potential", mean.span,
+                        expected="'reversal E' after the time constant, E a voltage",
+                        hint="e.g. '... tau 5 ms reversal 0 mV onto ...'")
+            ok = False
+        if not ok:
+            return None
+        return dict(kind="noise", mean=mean, sd=sd, tau=tau, reversal=reversal)
+
+    def background(self, meta, children):
+        drive, *classes = children
+        if drive is None:
+            return None
+        names = []
+        for tok in classes:
+            if str(tok) in names:
+                self.c.fail(f"class {str(tok)!r} is listed twice", self._tspan(tok),
+                            expected="each class once", hint="drop the repeat")
+                continue
+            names.append(str(tok))
+        return ast.Background(classes=tuple(names), span=self._span(meta), **drive)
+
+    def network(self, meta, children) -> ast.Network:
+        regions = tuple(c for c in children if isinstance(c, ast.Region))
+        background = tuple(c for c in children if isinstance(c, ast.Background))
+        span = self._span(meta)
+        if not regions and not any(c is None for c in children):
+            self.c.fail("'network:' gives no region", span,
+                        expected="a line 'region within Q of CELL', 'region in layer L' or 'region all'",
+                        hint="e.g. 'region within 300 um of post'")
+        everything = [r for r in regions if r.everything]
+        if everything and len(regions) > 1:
+            self.c.fail("'region all' together with another region line", everything[0].span,
+                        expected="either 'region all' or region lines that narrow it",
+                        hint="drop 'region all': the other lines already define the region")
+        return ast.Network(regions=regions, background=background, span=span)
 
     # --- timing ------------------------------------------------------------------------------
     def sweeps(self, meta, children) -> ast.Sweeps | None:
@@ -1517,7 +1664,9 @@ class _Lowering(Transformer):
 
     def measure(self, meta, children) -> ast.Measure:
         cell, *items = children
-        self.references.append(_Reference(str(cell), self._tspan(cell), "measure"))
+        # `measure network:` reads the whole embedded network, not a selected cell
+        if str(cell) != NETWORK_TARGET:
+            self.references.append(_Reference(str(cell), self._tspan(cell), "measure"))
         return ast.Measure(cell=str(cell), items=tuple(items), span=self._span(meta))
 
     # --- the whole file -------------------------------------------------------------------
@@ -1596,14 +1745,33 @@ class _Lowering(Transformer):
         title, circuit = found["protocol"], found["circuit"]
         bath = found.get("bath")
         simulate = found.get("simulate")
+        lesions = found.get("lesions")
+        network = found.get("network")
+        self._check_mode(simulate, network)
         return ast.Protocol(title=title.text, circuit=circuit.path, seed=circuit.seed,
                             sweeps=found["sweeps"], cells=cells,
                             bath=bath.items if bath else (),
                             settings=simulate.settings if simulate else (),
                             recordings=tuple(recordings), stimuli=tuple(stimuli),
                             measures=tuple(measures), scans=tuple(scans),
+                            lesions=lesions.items if lesions else (), network=network,
                             file=self.file, span=title.span,
                             circuit_span=circuit.path_span)
+
+    def _check_mode(self, simulate, network) -> None:
+        """``simulate embedded`` needs a ``network:`` block; ``simulate isolated`` excludes one."""
+        names = {s.name: s for s in simulate.settings} if simulate else {}
+        if "isolated" in names and "embedded" in names:
+            self.c.fail("'isolated' and 'embedded' together", names["embedded"].span,
+                        expected="one simulation mode", hint="keep one of them")
+        elif "embedded" in names and network is None:
+            self.c.fail("'simulate embedded' without a 'network:' block", names["embedded"].span,
+                        expected="a 'network:' block giving the simulated region",
+                        hint="add 'network:' with a line such as 'region within 300 um of post'")
+        elif "isolated" in names and network is not None:
+            self.c.fail("a 'network:' block in an isolated simulation", network.span,
+                        expected="'simulate embedded' (or no mode: the network block implies it)",
+                        hint="drop 'isolated' from the simulate line, or drop the network block")
 
     def _check_drives(self, recordings: list[ast.Recording], stimuli: list[ast.Stimulate]) -> None:
         """Amplitudes must fit the recording mode: currents in current clamp (and on cells
@@ -1682,6 +1850,10 @@ class _Lowering(Transformer):
             return "sweeps", None, statement.span
         if isinstance(statement, _Simulate):
             return "simulate", None, statement.span
+        if isinstance(statement, _Lesions):
+            return "lesions", None, statement.span
+        if isinstance(statement, ast.Network):
+            return "network", None, statement.span
         if isinstance(statement, ast.Recording):
             return "record", statement.cell, statement.span
         if isinstance(statement, ast.Stimulate):

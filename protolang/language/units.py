@@ -28,6 +28,7 @@ DIMENSIONS = {
     "velocity": "a velocity (e.g. 0.3 m/s)",
     "specific_conductance": "a conductance per membrane area (e.g. 0.1 mS/cm2)",
     "specific_capacitance": "a capacitance per membrane area (e.g. 1 uF/cm2)",
+    "memory": "an amount of memory (e.g. 4 GB)",
     "number": "a plain number",
 }
 
@@ -55,6 +56,8 @@ UNITS: dict[str, tuple[str, float]] = {
     "S/cm2": ("specific_conductance", 1e4), "mS/cm2": ("specific_conductance", 10.0),
     "uS/cm2": ("specific_conductance", 1e-2), "S/m2": ("specific_conductance", 1.0),
     "uF/cm2": ("specific_capacitance", 1e-2), "F/m2": ("specific_capacitance", 1.0),
+    # bytes (decimal prefixes)
+    "kB": ("memory", 1e3), "MB": ("memory", 1e6), "GB": ("memory", 1e9),
 }
 
 # Display units used when writing tables and plans back out.
@@ -62,7 +65,7 @@ DISPLAY = {
     "time": "ms", "voltage": "mV", "current": "pA", "conductance": "nS",
     "resistance": "MOhm", "capacitance": "pF", "frequency": "Hz", "concentration": "mM",
     "length": "um", "temperature": "degC", "percent": "%", "velocity": "m/s",
-    "specific_conductance": "mS/cm2", "specific_capacitance": "uF/cm2",
+    "specific_conductance": "mS/cm2", "specific_capacitance": "uF/cm2", "memory": "GB",
 }
 
 

@@ -7,7 +7,8 @@ here, so the language reference and the collectors cannot drift apart.
 Keys of an entry: ``needs_source`` (``COLLECTOR to SOURCE``), ``needs_recording`` (the cell
 must be recorded; default: as ``needs_source``), ``needs_step`` (the kind of current step
 the protocol must give the cell), ``needs_engine`` (the collector simulates experiments of
-its own, so it cannot run on imported recordings), ``options`` (name -> (dimension, SI
+its own, so it cannot run on imported recordings), ``scope`` ("network" for collectors of
+``measure network:``, which read every simulated cell of an embedded run; default "cell"), ``options`` (name -> (dimension, SI
 default)), ``tables`` and ``description``.
 """
 
@@ -82,6 +83,20 @@ COLLECTORS: dict[str, dict] = {
         "tables": ["cells", "classes"],
         "description": "smallest step current that makes the cell fire, found by simulated test steps "
                        "(many currents per round, all cells at once); no step needed in the protocol",
+    },
+    "activity": {
+        "needs_source": False,
+        "needs_recording": False,
+        "scope": "network",
+        "options": {
+            # start of the analysed stretch of each sweep: skips the network's start-up transient
+            "discard": ("time", 0.2),
+            # bin of the spike counts behind the synchrony measure and the spike-count correlation
+            "bin": ("time", 0.005),
+        },
+        "tables": ["populations", "bursts"],
+        "description": "population activity of the embedded network per class: firing rate, ISI CV, "
+                       "synchrony (Golomb's chi), spike-count correlation, population bursts, state label",
     },
 }
 

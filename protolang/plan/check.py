@@ -12,6 +12,8 @@ from ..language.units import DIMENSIONS, expect
 from ..language.errors import ProtocolError
 from ..measure.registry import COLLECTORS
 
+NETWORK_TARGET = "network"   # the name `measure` uses for the whole embedded network (as the parser)
+
 
 def find_pathway(circuit, pre_class: str, post_class: str):
     """The circuit's pathway from ``pre_class`` to ``post_class``, or None."""
@@ -104,12 +106,27 @@ def check_measures(p: ast.Protocol, circuit, out: Collector) -> None:
     stimulated = {s.cell for s in p.stimuli}
     classes = {pick.name: pick.cell_class for pick in p.cells.picks}
     for block in p.measures:
+        on_network = block.cell == NETWORK_TARGET
+        if on_network and p.network is None:
+            out.fail("`measure network:` needs an embedded network", block.span,
+                     expected="a `network:` block giving the simulated region",
+                     hint="add `network:` with a line such as `region within 300 um of post`")
+            continue
         for item in block.items:
             spec = COLLECTORS.get(item.collector)
             if spec is None:
                 out.fail(f"unknown collector {item.collector!r}", item.span,
                          expected="one of " + ", ".join(sorted(COLLECTORS)),
                          hint=suggest(item.collector, COLLECTORS))
+                continue
+            scope = spec.get("scope", "cell")
+            if on_network != (scope == "network"):
+                fitting = sorted(k for k, v in COLLECTORS.items() if (v.get("scope", "cell") == "network") == on_network)
+                where = "the network" if on_network else f"cell {block.cell!r}"
+                out.fail(f"`{item.collector}` does not apply to {where}", item.span,
+                         expected="one of " + ", ".join(fitting),
+                         hint="network collectors go under `measure network:`" if scope == "network"
+                         else "cell collectors go under `measure CELL:`")
                 continue
             if spec["needs_source"] and item.source is None:
                 out.fail(f"`{item.collector}` needs a presynaptic cell", item.span,
@@ -205,6 +222,82 @@ def check_cell_collectors(p: ast.Protocol, circuit, out: Collector) -> None:
                          steps[1].span, hint="keep one `step` or `steps of` line for a characterised cell")
 
 
+def _layer_ok(layer: str, span, circuit, out: Collector) -> None:
+    if layer not in circuit.layers:
+        out.fail(f"unknown layer {layer!r}", span, expected="a layer of the circuit: " + ", ".join(circuit.layers),
+                 hint=suggest(layer, circuit.layers))
+
+
+def _class_ok(name: str, span, circuit, out: Collector, *, allow_all: bool = False) -> bool:
+    if name in circuit.classes or (allow_all and name == "all"):
+        return True
+    expected = f"a cell class of the circuit: {_class_list(circuit)}" + (", or `all`" if allow_all else "")
+    out.fail(f"unknown cell class {name!r}", span, expected=expected, hint=suggest(name, circuit.classes))
+    return False
+
+
+def _pathway_ok(pre: str, post: str, span, circuit, out: Collector) -> bool:
+    ok = _class_ok(pre, span, circuit, out) & _class_ok(post, span, circuit, out)
+    if ok and find_pathway(circuit, pre, post) is None:
+        out.fail(f"the circuit has no pathway {pre} -> {post}", span,
+                 expected="a pathway of the circuit: " + ", ".join(sorted(circuit.pathways)),
+                 hint=suggest(f"{pre}->{post}", circuit.pathways))
+        return False
+    return ok
+
+
+def check_lesions(p: ast.Protocol, circuit, out: Collector) -> None:
+    """Lesions name classes, layers and pathways the circuit has; a pathway is cut or scaled once."""
+    changed: dict[tuple[str, str], ast.Cut | ast.ScalePathway] = {}
+    silenced: dict[str, ast.Silence] = {}
+    for item in p.lesions:
+        if isinstance(item, ast.Remove):
+            _class_ok(item.cell_class, item.class_span or item.span, circuit, out, allow_all=True)
+            for place in item.places:
+                if isinstance(place, ast.InLayer):
+                    _layer_ok(place.layer, place.span or item.span, circuit, out)
+        elif isinstance(item, ast.Silence):
+            if _class_ok(item.cell_class, item.span, circuit, out):
+                if item.cell_class in silenced:
+                    out.fail(f"class {item.cell_class!r} is silenced twice", item.span,
+                             hint=f"the first line is {silenced[item.cell_class].span.line}")
+                silenced[item.cell_class] = item
+        elif isinstance(item, (ast.Cut, ast.ScalePathway)):
+            if _pathway_ok(item.pre, item.post, item.span, circuit, out):
+                key = (item.pre, item.post)
+                if key in changed:
+                    out.fail(f"pathway {item.pre} -> {item.post} is cut or scaled twice", item.span,
+                             expected="one `cut` or `scale` line per pathway",
+                             hint=f"the first line is {changed[key].span.line}")
+                changed[key] = item
+        else:  # pragma: no cover - the parser builds only these
+            raise AssertionError(f"internal error: unknown lesion {item!r}")
+
+
+def check_network(p: ast.Protocol, circuit, out: Collector) -> None:
+    """The embedded network's region layers, background classes and receptors exist."""
+    if p.network is None:
+        return
+    for region in p.network.regions:
+        for place in region.places:
+            if isinstance(place, ast.InLayer):
+                _layer_ok(place.layer, place.span or region.span, circuit, out)
+    for bg in p.network.background:
+        for name in bg.classes:
+            _class_ok(name, bg.span, circuit, out)
+        if bg.kind == "poisson" and bg.receptor not in circuit.receptors:
+            out.fail(f"unknown receptor {bg.receptor!r}", bg.span,
+                     expected="a receptor of the circuit: " + ", ".join(sorted(circuit.receptors)),
+                     hint=suggest(bg.receptor, circuit.receptors))
+    for c in circuit.classes.values():
+        if c.model != "adex":
+            out.fail(f"embedded networks simulate adaptive exponential cells only; class {c.name!r} uses "
+                     f"{c.model!r}", p.network.span,
+                     expected="a circuit whose classes all use the `adex` model",
+                     hint="record these cells in isolated mode (drop the `network:` block)")
+            break
+
+
 CHECKS = (
     check_classes,
     check_connectivity_constraints,
@@ -214,6 +307,8 @@ CHECKS = (
     check_measures,
     check_inputs,
     check_cell_collectors,
+    check_lesions,
+    check_network,
 )
 
 

@@ -111,6 +111,7 @@ class RolePlan:
     # optional (n_repeat, n_sweeps) factor multiplying the rendered waveform of each cell and sweep
     # (a rheobase search gives every cell its own step currents with one unit-step waveform)
     amplitude_scale: np.ndarray | None = None
+    silenced: bool = False                       # a lesion took away its spike generation
 
 
 @dataclass
@@ -175,6 +176,117 @@ class ActivationPlan:
 
 
 @dataclass
+class LesionRecord:
+    """What one lesion line did: counts per class and pathway, and the exact cells removed.
+
+    ``removed_ids`` lists circuit ids: for a lesion relative to a selected cell, one list per
+    repeat (the cells around that repeat's cell); otherwise one list for the whole circuit.
+    Connection counts are circuit connections (pre -> post cell pairs) of the whole circuit,
+    plus those of the simulated network in embedded mode.
+    """
+
+    text: str
+    kind: str                                    # "remove" | "cut" | "silence" | "scale"
+    span: str
+    cells: dict[str, int] = field(default_factory=dict)          # class -> cells removed/silenced
+    connections: dict[str, int] = field(default_factory=dict)    # pathway -> connections removed/scaled
+    factor: float | None = None
+    removed_ids: list = field(default_factory=list)
+    per_repeat: bool = False
+
+
+@dataclass
+class PopulationPlan:
+    """The simulated cells of an embedded network besides the selected ones, every repeat's copy.
+
+    Cells are ordered by class (file order), then repeat, then circuit id, so each class is one
+    contiguous block. Arrays have shape (M,).
+    """
+
+    model: str                                   # "adex"
+    class_names: list[str]
+    class_index: np.ndarray                      # (M,) index into class_names
+    repeat: np.ndarray                           # (M,) the repeat whose subcircuit holds the cell
+    cell_ids: np.ndarray                         # (M,) circuit ids
+    positions: np.ndarray                        # (M, 3) m
+    params: dict[str, np.ndarray]
+    silenced: np.ndarray                         # (M,) bool
+
+    @property
+    def size(self) -> int:
+        return int(self.cell_ids.shape[0])
+
+
+@dataclass
+class EdgeSet:
+    """Circuit connections of one receptor set between two endpoints of an embedded network.
+
+    An endpoint is ``"network"`` (index into the population) or a role name (index = repeat).
+    Parameters per connection follow :class:`SynapsePlan`; ``weights`` gives each receptor's
+    relative peak conductance per connection (pathways sharing a receptor set differ in it).
+    """
+
+    name: str
+    pre: str
+    post: str
+    pre_index: np.ndarray
+    post_index: np.ndarray
+    pathway: np.ndarray                          # (K,) index into NetworkPlan.pathways
+    n_sites: np.ndarray
+    site_conductance: np.ndarray
+    U: np.ndarray
+    U_reference: np.ndarray
+    D: np.ndarray
+    F: np.ndarray
+    delay: np.ndarray
+    weights: dict[str, np.ndarray]
+    stochastic: bool = True
+
+    @property
+    def size(self) -> int:
+        return int(self.pre_index.shape[0])
+
+
+@dataclass
+class BackgroundPlan:
+    """Ongoing drive of every simulated cell of ``classes`` for the whole run."""
+
+    kind: str                                    # "poisson" | "noise"
+    classes: list[str]
+    rate: float = 0.0                            # Hz (poisson)
+    conductance: float = 0.0                     # S per input spike (poisson)
+    receptor: str = ""
+    mean: float = 0.0                            # A or S (noise)
+    sd: float = 0.0
+    tau: float = 0.0
+    reversal: float | None = None
+
+
+@dataclass
+class NetworkPlan:
+    """Embedded mode: the subcircuit simulated around the selected cells."""
+
+    region: str
+    population: PopulationPlan
+    edges: list[EdgeSet]
+    background: list[BackgroundPlan]
+    pathways: list[str]
+    counts: dict                                 # summary: cells per class, connections per pathway
+    memory_estimate: float                       # bytes, before building
+    memory_limit: float
+
+    def to_plain(self) -> dict:
+        """A summary for plan.json: counts, not the (possibly million-long) arrays."""
+        return {"region": self.region, "cells": self.population.size,
+                "connections": int(sum(e.size for e in self.edges)),
+                "release_sites": int(sum(int(np.sum(e.n_sites)) for e in self.edges)),
+                "edge_sets": {e.name: e.size for e in self.edges},
+                "background": _plain(self.background), "counts": _plain(self.counts),
+                "memory_estimate_GB": round(self.memory_estimate / 1e9, 3),
+                "memory_limit_GB": round(self.memory_limit / 1e9, 3)}
+
+
+@dataclass
 class MeasurePlan:
     cell: str
     collector: str
@@ -199,7 +311,7 @@ class Plan:
     n_repeat: int
     layout: str                        # "replicas" | "sequential"
     layout_reason: str
-    mode: str                          # "isolated"
+    mode: str                          # "isolated" | "embedded"
     conditions: dict[str, float | str | dict]
     roles: list[RolePlan]
     receptors: dict[str, ReceptorPlan]
@@ -208,6 +320,8 @@ class Plan:
     spans: dict[str, str] = field(default_factory=dict)   # Brian2 object name -> "file:line:col"
     activations: list[ActivationPlan] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    lesions: list[LesionRecord] = field(default_factory=list)
+    network: NetworkPlan | None = None
 
     def role(self, name: str) -> RolePlan:
         for r in self.roles:
@@ -227,6 +341,8 @@ class Plan:
 
 
 def _plain(obj):
+    if hasattr(obj, "to_plain"):
+        return obj.to_plain()
     if is_dataclass(obj):
         return {f.name: _plain(getattr(obj, f.name)) for f in fields(obj)}
     if isinstance(obj, dict):

@@ -25,6 +25,8 @@ from ..measure.registry import COLLECTORS
 from .check import find_pathway, run_checks
 from .model import (ActivationPlan, CurrentPulse, MeasurePlan, NoiseSpec, Plan, PoissonSpec, ReceptorPlan,
                     RolePlan, StimulusEvent, SynapsePlan, WaveSegment)
+from .lesions import check_pools, repeat_lesions, whole_circuit_lesions
+from .network import background_plans, resolve_network, role_background
 from .select import select_cells
 
 DEFAULT_DT = 0.025e-3          # s; a common choice for conductance-based point neurons
@@ -57,8 +59,9 @@ def adex_holdable_limit(params: dict[str, np.ndarray]) -> np.ndarray:
 
 # --- settings -----------------------------------------------------------------------
 def _settings(p: ast.Protocol) -> dict:
-    out = {"dt": DEFAULT_DT, "sample_dt": 1.0 / DEFAULT_SAMPLING, "mode": "isolated",
-           "deterministic": False}
+    out = {"dt": DEFAULT_DT, "sample_dt": 1.0 / DEFAULT_SAMPLING,
+           "mode": "embedded" if p.network is not None else "isolated",
+           "deterministic": False, "memory": None, "memory_span": None}
     for s in p.settings:
         if s.name == "timestep":
             out["dt"] = expect(s.value, "time", "timestep")
@@ -72,8 +75,9 @@ def _settings(p: ast.Protocol) -> dict:
             out["sample_dt"] = 1.0 / rate
         elif s.name == "deterministic":
             out["deterministic"] = True
-        elif s.name == "isolated":
-            out["mode"] = "isolated"
+        elif s.name == "memory":
+            out["memory"] = expect(s.value, "memory", "memory limit")
+            out["memory_span"] = s.value.span
     if out["sample_dt"] < out["dt"] * (1 - 1e-9):
         span = next((s.span for s in p.settings if s.name == "sampling"), None)
         raise error("sampling is faster than the simulation time step", span,
@@ -250,12 +254,15 @@ def _clamp_check(params: dict, model: str, rs: float, dt: float, name: str, span
 
 
 def _activation(act: ast.Activate, target: str, target_ids: np.ndarray, circuit, instance, rng,
-                release_factor: float, stochastic: bool, index: int):
+                release_factor: float, stochastic: bool, index: int, lesions):
     pw = find_pathway(circuit, act.cell_class, circuit_class_of(instance, target_ids[0]))
     pool = instance.ids_of(act.cell_class)
+    if act.cell_class in lesions.silenced or pw.name in lesions.cut:
+        pool = pool[:0]    # silenced cells cannot fire; a cut pathway carries nothing
     reps, ids = [], []
     for rep, tid in enumerate(target_ids):
-        sources = pool[instance.connected(pool, np.full(pool.shape, tid))]
+        alive = pool[~lesions.gone(rep)[pool]]
+        sources = alive[instance.connected(alive, np.full(alive.shape, tid))]
         n = int(round(act.fraction.si * len(sources)))
         if n:
             chosen = np.sort(rng.choice(sources, size=n, replace=False))
@@ -264,6 +271,7 @@ def _activation(act: ast.Activate, target: str, target_ids: np.ndarray, circuit,
     reps, ids = np.array(reps, dtype=int), np.array(ids, dtype=int)
     tgt = target_ids[reps] if len(reps) else np.zeros(0, dtype=int)
     cp = instance.connection_params(ids, tgt)
+    cp["site_conductance"] = cp["site_conductance"] * lesions.conductance_factor(pw.name)
     return ActivationPlan(
         name=f"activate_{target}_{index}", target=target, cell_class=act.cell_class, pathway=pw.name,
         fraction=act.fraction.si, times=np.array([t.si for t in act.times]), source_repeat=reps, source_ids=ids,
@@ -300,8 +308,11 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
         instance = instantiate(circuit, protocol.seed)
     settings = _settings(protocol)
     cond = _bath(protocol, circuit)
+    lesions = whole_circuit_lesions(protocol, instance)
+    check_pools(protocol, instance, lesions)
     sel_rng = np.random.default_rng(np.random.SeedSequence([protocol.seed, 0x5E1EC7]))
-    selection = select_cells(protocol.cells, instance, sel_rng)
+    selection = select_cells(protocol.cells, instance, sel_rng, excluded=lesions.removed)
+    repeat_lesions(lesions, protocol, instance, selection)
     n_repeat = protocol.cells.repeat
 
     stim_blocks = {s.cell: s for s in protocol.stimuli}
@@ -361,13 +372,23 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
                     holding = np.full(n_repeat, rec.holding.si)
             if rec.noise is not None:
                 noise = expect(rec.noise, "voltage", "recording noise")
+        role_noise, role_poisson = list(st.noise), list(st.poisson)
+        if protocol.network is not None and st.spikes is None:
+            bg_noise, bg_poisson = role_background(background_plans(protocol.network), pick.cell_class, interval)
+            role_noise += bg_noise
+            role_poisson += bg_poisson
+        silenced = pick.cell_class in lesions.silenced
+        if silenced and st.spikes is not None:
+            notes_extra.append(f"{name} fires at explicit times although its class {pick.cell_class} is silenced: "
+                               f"a spike source has no membrane to silence")
+            silenced = False
         roles.append(RolePlan(
             name=name, cell_class=pick.cell_class, model=cell_class.model,
             cell_ids=ids, positions=instance.positions[ids], params=params,
             recorded=rec is not None and rec.mode != "off", mode=rec.mode if rec else "current clamp",
             holding_current=holding, holding_potential=hold_v, noise_sd=noise,
             pulses=st.pulses, spike_times=st.spikes, events=st.events, segments=st.segments,
-            noise=st.noise, poisson=st.poisson, series_resistance=series))
+            noise=role_noise, poisson=role_poisson, series_resistance=series, silenced=silenced))
         spans[f"cell_{name}"] = str(pick.span)
 
     # receptors and blocks; kinetics at the bath temperature (rise and decay / Q10 factor)
@@ -405,6 +426,11 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             pre_ids, post_ids = selection.ids[pre], selection.ids[post]
             connected = instance.connected(pre_ids, post_ids)
             cp = instance.connection_params(pre_ids, post_ids)
+            if pw.name in lesions.cut:
+                notes_extra.append(f"{pre} -> {post}: pathway {pw.name} is cut by a lesion; "
+                                   f"{int(connected.sum())} anatomical connection(s) carry nothing")
+                connected = np.zeros_like(connected)
+            cp["site_conductance"] = cp["site_conductance"] * lesions.conductance_factor(pw.name)
             U_ref = np.where(connected, cp["U"], 0.0)
             synapses.append(SynapsePlan(
                 name=f"{pre}_to_{post}", pre=pre, post=post, pathway=pw.name, connected=connected,
@@ -424,7 +450,7 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
     for name in selection.names:
         for k, act in enumerate(roles_stim[name].activations):
             plan_act = _activation(act, name, selection.ids[name], circuit, instance, act_rng,
-                                   cond["release_factor"], not settings["deterministic"], k)
+                                   cond["release_factor"], not settings["deterministic"], k, lesions)
             if len(plan_act.source_ids) == 0:
                 notes_extra.append(f"{act.span}: warning: activating {act.fraction} of {act.cell_class} reaches no "
                                    f"cell projecting to {name!r} in any repeat")
@@ -443,6 +469,13 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             if item.source is not None and not any(s.pre == item.source and s.post == block.cell for s in synapses):
                 raise AssertionError("internal error: measured pathway has no synapse plan")
 
+    network = None
+    if protocol.network is not None:
+        network = resolve_network(protocol, instance, selection, lesions, cond,
+                                  stochastic=not settings["deterministic"], duration=sw.count * interval,
+                                  memory_limit=settings["memory"], memory_span=settings["memory_span"])
+        for role in roles:
+            role.silenced = role.silenced and role.spike_times is None
     layout, reason = _layout(settings, interval, length, roles, receptors, synapses)
     text_hash = hashlib.sha256((source_text or "").encode()).hexdigest() if source_text else ""
     notes = [f"{d.span}: warning: {d.message}" for d in out.warnings] + notes_extra
@@ -452,7 +485,8 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
         dt=settings["dt"], sample_dt=settings["sample_dt"], sweep_length=length,
         n_sweeps=sw.count, interval=interval, n_repeat=n_repeat, layout=layout, layout_reason=reason,
         mode=settings["mode"], conditions=cond, roles=roles, receptors=receptors, synapses=synapses,
-        measures=measures, spans=spans, notes=notes, activations=activations)
+        measures=measures, spans=spans, notes=notes, activations=activations,
+        lesions=lesions.records, network=network)
 
 
 def _layout(settings, interval, length, roles, receptors, synapses) -> tuple[str, str]:
@@ -472,6 +506,9 @@ def _layout(settings, interval, length, roles, receptors, synapses) -> tuple[str
         slow.append((rc.decay, f"{rc.name} decay"))
     tau, what = max(slow) if slow else (0.0, "nothing")
     gap = interval - length
+    if settings["mode"] == "embedded":
+        return "sequential", ("embedded: the network's ongoing activity carries from one sweep into the next, so "
+                              "sweeps run one after another in continuous time")
     if settings["mode"] == "isolated" and gap >= RECOVERY_FACTOR * tau:
         return "replicas", (f"isolated cells and a {gap * 1e3:g} ms gap between sweeps >= {RECOVERY_FACTOR:g} x the "
                             f"slowest time constant ({what}, {tau * 1e3:g} ms): sweeps are independent, so all "

@@ -41,13 +41,15 @@ def _candidates(pick: ast.CellPick, chosen: dict[str, int], pool: np.ndarray, in
     return steps
 
 
-def select_cells(cells: ast.Cells, instance, rng: np.random.Generator) -> Selection:
+def select_cells(cells: ast.Cells, instance, rng: np.random.Generator,
+                 excluded: np.ndarray | None = None) -> Selection:
     """Pick ``cells.repeat`` groups of cells satisfying every constraint.
 
     Args:
         cells: the `cells:` block.
         instance: an instantiated circuit (ids_of, distance, connected).
         rng: the selection's random generator (derived from the protocol seed).
+        excluded: optional (n_cells,) bool, cells that may not be picked (removed by a lesion).
 
     Returns:
         Selection with one id array per role, each of length ``cells.repeat``.
@@ -58,6 +60,8 @@ def select_cells(cells: ast.Cells, instance, rng: np.random.Generator) -> Select
     """
     picks = cells.picks
     pools = {p.name: instance.ids_of(p.cell_class) for p in picks}
+    if excluded is not None and excluded.any():
+        pools = {name: ids[~excluded[ids]] for name, ids in pools.items()}
     first = picks[0]
     order = rng.permutation(pools[first.name])
     groups: list[dict[str, int]] = []
