@@ -37,11 +37,22 @@ in the current, as for synapses). Extracellular activation: one SpikeGeneratorGr
 every activated source once per replica it feeds, connected through the same Tsodyks-Markram
 release synapses as the role-to-role connections.
 
+Shared objects: every Brian2 object costs a fixed overhead per time step, so membrane roles
+whose equations and namespace come out identical (same cell model, receptors, Hodgkin-Huxley
+currents, stimulus text, noise inputs; not voltage-clamped, no release accumulators) share one
+NeuronGroup, each role a contiguous block of ``n_cells`` cells (:class:`RoleBlock`), and
+role-to-role synapses between the same two groups with the same receptors and release kind
+share one Synapses object. Per-cell and per-synapse values are concatenated, so deterministic
+results do not change; random draws come in another order.
+
 Object names follow protocol identifiers so diagnostics can cite the protocol:
-``cell_<role>`` (NeuronGroup or SpikeGeneratorGroup), ``cell_<role>_poisson<k>`` (Poisson
-input and its ``_syn``), ``syn_<synapse>`` (Synapses), ``act_<activation>`` (source group and
-its ``_syn``), ``trace_<role>``, ``spikes_<role>``, ``release_<synapse>``, ``inputs_<...>``
-(monitors), ``stim_library``, ``sweep_columns``, ``sweep_scale``.
+``cell_<role>`` (NeuronGroup or SpikeGeneratorGroup of one role), ``cells_<role>_<role>...``
+(NeuronGroup shared by several roles), ``cell_<role>_poisson<k>`` (Poisson input and its
+``_syn``), ``syn_<synapse>`` (Synapses of one synapse plan), ``syns_<synapse>_<synapse>...``
+(Synapses shared by several), ``act_<activation>`` (source group and its ``_syn``),
+``trace_<role>``, ``spikes_<role>`` (or ``trace_<group>``, ``spikes_<group>`` for a shared
+group), ``release_<synapse>``, ``inputs_<...>`` (monitors), ``stim_library``, ``sweep_columns``,
+``sweep_scale``.
 Every per-replica array is built with numpy (no Python loop over replicas), and
 connectivity is passed as explicit i/j arrays so every code-generation target builds the
 same network.
@@ -50,7 +61,7 @@ same network.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import astuple, dataclass, field
 from typing import Any, Callable
 
 import numpy as np
@@ -201,24 +212,59 @@ def make_layout(plan: Plan, notes: list[str]) -> Layout:
                   sweep_length, interval, duration, n_samples, starts)
 
 
+@dataclass(frozen=True)
+class RoleBlock:
+    """Where one role's cells live: cells ``start .. start + size - 1`` of the Brian2 group named
+    ``group``; the role's cell k (replica or repeat k of the layout) is group cell ``start + k``."""
+
+    group: str
+    start: int
+    size: int
+
+    @property
+    def stop(self) -> int:
+        return self.start + self.size
+
+    def cells(self, local: np.ndarray | None = None) -> np.ndarray:
+        """Group indices of the role's cells: all of them, or those at positions ``local``."""
+        local = np.arange(self.size) if local is None else np.asarray(local, dtype=np.int64)
+        return self.start + local
+
+    def take(self, values: Any) -> np.ndarray:
+        """The role's part (first axis) of a per-cell array of its group."""
+        return np.asarray(values)[self.start:self.stop]
+
+
 @dataclass
 class Built:
-    """The network and the handles needed to read it back."""
+    """The network and the handles needed to read it back.
+
+    Roles of one kind may share a Brian2 group (:func:`cell_groups`): ``blocks`` says where each
+    role's cells are, ``groups`` which roles a group holds. ``cells``, ``spike_monitors`` and
+    ``trace_monitors`` map every role to its group's object (shared by merged roles), and
+    ``trace_rows`` gives the role's rows in its trace monitor.
+    """
 
     network: Any
     layout: Layout
     names: dict[tuple[str, str], str]
-    cells: dict[str, Any] = field(default_factory=dict)              # role -> group
+    cells: dict[str, Any] = field(default_factory=dict)              # role -> group holding its cells
+    blocks: dict[str, RoleBlock] = field(default_factory=dict)       # role -> its cells in that group
+    groups: dict[str, list[str]] = field(default_factory=dict)       # group name -> roles, block order
+    merged: dict[str, tuple[str, tuple[str, ...]]] = field(default_factory=dict)  # merged object -> (kind, identifiers)
     adex_roles: list[str] = field(default_factory=list)
     hh_roles: list[str] = field(default_factory=list)
-    trace_monitors: dict[str, Any] = field(default_factory=dict)     # role -> StateMonitor
+    trace_monitors: dict[str, Any] = field(default_factory=dict)     # role -> StateMonitor of its group
+    trace_rows: dict[str, slice] = field(default_factory=dict)       # role -> its rows in that monitor
     trace_variables: dict[str, str] = field(default_factory=dict)    # role -> "v" | "I_clamp"
     trace_units: dict[str, str] = field(default_factory=dict)        # role -> "V" | "A"
     input_monitors: dict[str, tuple[Any, np.ndarray]] = field(default_factory=dict)  # name -> (mon, cell of source)
-    spike_monitors: dict[str, Any] = field(default_factory=dict)     # role -> SpikeMonitor
+    spike_monitors: dict[str, Any] = field(default_factory=dict)     # role -> SpikeMonitor of its group
     release_monitors: dict[str, tuple[Any, str]] = field(default_factory=dict)  # syn -> (mon, var)
     n_synapses: dict[str, int] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    population: Any = None                                           # embedded network's NeuronGroup
+    population_spikes: Any = None                                    # and its SpikeMonitor
 
 
 def _per_repeat(plan: Plan, values: Any, what: str) -> np.ndarray:
@@ -595,58 +641,118 @@ def _stimulus_text(role: RolePlan, layout: Layout, lib: StimulusLibrary, column_
     return expr, tuple(decl), per_cell
 
 
+@dataclass
+class SynapseArrays:
+    """Per-synapse values of Tsodyks-Markram release synapses (one entry per connection, or per
+    release site if ``stochastic``), with source and target cells as indices of their groups."""
+
+    pre: np.ndarray
+    post: np.ndarray
+    U: np.ndarray
+    rate_D: np.ndarray                 # 1/s
+    rate_F: np.ndarray                 # 1/s
+    delay: np.ndarray                  # s
+    sites: np.ndarray | None           # release sites per connection (deterministic only)
+    stochastic: bool
+    receptors: tuple[str, ...]         # receptor names, in plan order
+    q: dict[str, np.ndarray]           # receptor suffix -> jump of x per released site (S/s)
+
+    @property
+    def size(self) -> int:
+        return int(self.pre.size)
+
+    @staticmethod
+    def concat(parts: list["SynapseArrays"]) -> "SynapseArrays":
+        """One set of arrays holding ``parts`` one after another (same kind and receptors)."""
+        first = parts[0]
+        if any(p.stochastic != first.stochastic or p.receptors != first.receptors for p in parts):
+            raise AssertionError("internal error: merging synapses of different kinds")
+        if len(parts) == 1:
+            return first
+
+        def cat(key: str) -> np.ndarray:
+            return np.concatenate([getattr(p, key) for p in parts])
+
+        return SynapseArrays(
+            pre=cat("pre"), post=cat("post"), U=cat("U"), rate_D=cat("rate_D"), rate_F=cat("rate_F"),
+            delay=cat("delay"), sites=None if first.sites is None else cat("sites"),
+            stochastic=first.stochastic, receptors=first.receptors,
+            q={k: np.concatenate([p.q[k] for p in parts]) for k in first.q})
+
+
+def _tm_arrays(plan: Plan, pre: np.ndarray, post: np.ndarray, which: np.ndarray,
+               values: dict[str, np.ndarray], receptors: dict[str, float], stochastic: bool,
+               suffix_of: dict[str, str]) -> SynapseArrays:
+    """Synapses ``pre[k] -> post[k]`` with the parameters at ``which[k]`` of ``values``; one
+    synapse per release site when ``stochastic`` (so possibly none at all)."""
+    sites = np.round(values["n_sites"]).astype(np.int64)
+    if stochastic:
+        count = sites[which]
+        pre, post, which = np.repeat(pre, count), np.repeat(post, count), np.repeat(which, count)
+    rec_names = [r for r in plan.receptors if r in receptors]
+    D, F = values["D"], values["F"]
+    q = {}
+    for rname in rec_names:
+        rec = plan.receptors[rname]
+        # a receptor's weight is one number for a synapse plan, one per connection for an edge set
+        weight = np.asarray(receptors[rname], dtype=float)
+        jump = values["site_conductance"] * weight * models.peak_factor(rec.rise, rec.decay)
+        q[suffix_of[rname]] = jump[which]
+    return SynapseArrays(
+        pre=np.asarray(pre, dtype=np.int64), post=np.asarray(post, dtype=np.int64), U=values["U"][which],
+        rate_D=np.where(D > 0, 1.0 / np.where(D > 0, D, 1.0), INSTANT_RATE)[which],
+        rate_F=np.where(F > 0, 1.0 / np.where(F > 0, F, 1.0), INSTANT_RATE)[which],
+        delay=values["delay"][which], sites=None if stochastic else sites[which].astype(float),
+        stochastic=stochastic, receptors=tuple(rec_names), q=q)
+
+
+def _tm_object(b2: Any, name: str, source: Any, target: Any, arrays: SynapseArrays,
+               release_var: str | None = None) -> Any:
+    """The Brian2 Synapses object of ``arrays`` (which must hold at least one synapse)."""
+    suffixes = list(arrays.q)
+    group = b2.Synapses(source, target, model=models.synapse_model(arrays.stochastic, suffixes),
+                        on_pre=models.synapse_on_pre(arrays.stochastic, suffixes, release_var),
+                        namespace={}, name=name)
+    group.connect(i=arrays.pre, j=arrays.post)
+    group.U_ = arrays.U
+    group.rate_D_ = arrays.rate_D
+    group.rate_F_ = arrays.rate_F
+    group.u_fac_ = 0.0
+    group.t_last_ = 0.0
+    if arrays.stochastic:
+        group.available_ = 1.0
+    else:
+        group.R_ = 1.0
+        group.sites_ = arrays.sites
+    for suffix, q in arrays.q.items():
+        setattr(group, f"q_{suffix}_", q)
+    group.delay_ = arrays.delay
+    return group
+
+
 def _tm_synapses(b2: Any, plan: Plan, name: str, source: Any, target: Any, pre: np.ndarray,
                  post: np.ndarray, which: np.ndarray, values: dict[str, np.ndarray],
                  receptors: dict[str, float], stochastic: bool, suffix_of: dict[str, str],
                  release_var: str | None = None) -> tuple[Any, int]:
     """Tsodyks-Markram release synapses ``pre[k] -> post[k]`` with the parameters at ``which[k]``
     of ``values``; one synapse per release site when ``stochastic``. (None, 0) if there are none."""
-    sites = np.round(values["n_sites"]).astype(np.int64)
-    if stochastic:
-        count = sites[which]
-        pre, post, which = np.repeat(pre, count), np.repeat(post, count), np.repeat(which, count)
-    if pre.size == 0:
+    arrays = _tm_arrays(plan, pre, post, which, values, receptors, stochastic, suffix_of)
+    if arrays.size == 0:
         return None, 0
-    rec_names = [r for r in plan.receptors if r in receptors]
-    suffixes = [suffix_of[r] for r in rec_names]
-    group = b2.Synapses(source, target, model=models.synapse_model(stochastic, suffixes),
-                        on_pre=models.synapse_on_pre(stochastic, suffixes, release_var),
-                        namespace={}, name=name)
-    group.connect(i=pre, j=post)
-    group.U_ = values["U"][which]
-    D, F = values["D"], values["F"]
-    group.rate_D_ = np.where(D > 0, 1.0 / np.where(D > 0, D, 1.0), INSTANT_RATE)[which]
-    group.rate_F_ = np.where(F > 0, 1.0 / np.where(F > 0, F, 1.0), INSTANT_RATE)[which]
-    group.u_fac_ = 0.0
-    group.t_last_ = 0.0
-    if stochastic:
-        group.available_ = 1.0
-    else:
-        group.R_ = 1.0
-        group.sites_ = sites[which].astype(float)
-    for suffix, rname in zip(suffixes, rec_names):
-        rec = plan.receptors[rname]
-        q = values["site_conductance"] * float(receptors[rname]) * models.peak_factor(rec.rise, rec.decay)
-        setattr(group, f"q_{suffix}_", q[which])
-    group.delay_ = values["delay"][which]
-    return group, int(pre.size)
+    return _tm_object(b2, name, source, target, arrays, release_var), arrays.size
 
 
-def _hh_group(b2: Any, plan: Plan, role: RolePlan, params: dict[str, np.ndarray], hold: np.ndarray,
-              terms: list, inputs: models.CellInputs, release_vars: list[str],
-              namespace: dict, events: dict, layout: Layout, name: str,
-              notes: list[str]) -> tuple[Any, np.ndarray]:
-    """A NeuronGroup of Hodgkin-Huxley cells, started at rest under their holding current (or
-    at the steady state of their voltage clamp)."""
+def _hh_cells(plan: Plan, role: RolePlan, params: dict[str, np.ndarray], hold: np.ndarray, clamp: bool,
+              layout: Layout, notes: list[str]) -> tuple[np.ndarray, dict[str, np.ndarray], frozenset[str]]:
+    """Per-cell values of a role's Hodgkin-Huxley cells, started at rest under their holding
+    current (or at the steady state of their voltage clamp).
+
+    Returns:
+        (v0 per repeat, variable -> per-cell values, the variables to set only where the
+        equations have them: parameters and gates of left-out currents).
+    """
     model = role.model
-    # leave out currents no repeat has: fewer state variables, same dynamics
-    channels = [ch for ch, g in models.hh_channels(model).items() if np.any(params[g] > 0)]
-    eqs = models.hh_equations(model, channels, terms, inputs, release_vars, exprel=EXPREL_NAME)
-    namespace = dict(namespace, **{EXPREL_NAME: exprel_function(b2)})
-    group = b2.NeuronGroup(layout.n_cells, eqs, threshold=HH_SPIKE_THRESHOLD,
-                           refractory=HH_SPIKE_THRESHOLD, method="exponential_euler",
-                           namespace=namespace, events=events or None, name=name)
-    if inputs.clamp:
+    if clamp:
         v0, found = models.clamp_rest(model, params, float(role.holding_potential),
                                       float(role.series_resistance), hold)
         if not found.all():
@@ -660,22 +766,20 @@ def _hh_group(b2: Any, plan: Plan, role: RolePlan, params: dict[str, np.ndarray]
         if not found.all():
             notes.append(f"role {role.name!r}: no resting state under the holding current in "
                          f"{int((~found).sum())} repeat(s); started at E_leak")
-    if not inputs.clamp:
+    if not clamp:
         stable = models.holding_is_stable(model, params, v0)
         if not stable.all():
             notes.append(f"role {role.name!r}: the resting state under the holding current is unstable "
                          f"in {int((~stable).sum())} repeat(s): the cell fires or oscillates from the start")
-    area = models.membrane_area(params)
-    group.area_ = layout.expand(area)
+    per_cell = {"area": layout.expand(models.membrane_area(params))}
+    optional = models.MODEL_PARAMS[model] + models.HH_RATE_FACTORS[model] + models.hh_gates(model)
     for key in models.MODEL_PARAMS[model] + models.HH_RATE_FACTORS[model]:
-        if key in group.variables:
-            setattr(group, key + "_", layout.expand(params[key]))
-    group.v_ = layout.expand(v0)
+        per_cell[key] = layout.expand(params[key])
+    per_cell["v"] = layout.expand(v0)
     gates = models.gate_steady_states(model, params, v0)
     for gate in models.hh_gates(model):
-        if gate in group.variables:
-            setattr(group, gate + "_", layout.expand(gates[gate]))
-    return group, v0
+        per_cell[gate] = layout.expand(gates[gate])
+    return v0, per_cell, frozenset(optional)
 
 
 #: Stream of the noise processes' starting values (apart from every other use of the seed).
@@ -698,7 +802,294 @@ def _noise_namespace(b2: Any, role: RolePlan, dt: float) -> tuple[tuple[models.N
     return tuple(terms), ns
 
 
-def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
+@dataclass
+class StimulusTables:
+    """The waveform library and, in the sequential layout, the per-sweep tables that index it:
+    where each role finds its column and amplitude factors, and the Brian2 namespace entries."""
+
+    library: StimulusLibrary | None
+    column_slot: dict[str, int]        # role -> column of ``sweep_columns`` (waveform varies by sweep)
+    scale_slot: dict[str, int]         # role -> first column of ``sweep_scale``
+    namespace: dict[str, Any]
+
+
+def _stimulus_tables(b2: Any, plan: Plan, layout: Layout) -> StimulusTables:
+    lib = stimulus_library(plan, layout)
+    namespace: dict[str, Any] = {"sweep_interval": layout.interval * b2.second}
+    column_slot: dict[str, int] = {}
+    scale_slot: dict[str, int] = {}
+    if lib is not None:
+        namespace["stim_library"] = b2.TimedArray(lib.values, dt=layout.dt * b2.second, name="stim_library")
+        if layout.kind == "sequential":
+            varying = [r for r, cols in lib.columns.items() if np.any(cols != cols[0])]
+            if varying:
+                table = np.stack([lib.columns[r] for r in varying], axis=1).astype(float)
+                column_slot = {r: k for k, r in enumerate(varying)}
+                namespace["sweep_columns"] = b2.TimedArray(table, dt=layout.dt * b2.second, name="sweep_columns")
+            if lib.scales:
+                table = np.concatenate([lib.scales[r].T for r in lib.scales], axis=1)
+                offsets = np.cumsum([0] + [lib.scales[r].shape[0] for r in lib.scales])
+                scale_slot = {r: int(o) for r, o in zip(lib.scales, offsets)}
+                namespace["sweep_scale"] = b2.TimedArray(table, dt=layout.dt * b2.second, name="sweep_scale")
+    return StimulusTables(lib, column_slot, scale_slot, namespace)
+
+
+@dataclass
+class CellSpec:
+    """One membrane role's Brian2 model before any Brian2 object exists.
+
+    Roles with equal ``key`` have identical equations, namespace, events and start-of-step code,
+    so one NeuronGroup can hold them all; their ``per_cell`` values are then concatenated role
+    after role (:func:`_neuron_group`).
+    """
+
+    role: str
+    kind: str                          # "adex" | "hh"
+    key: tuple
+    equations: str
+    threshold: str
+    reset: str | None
+    refractory: str
+    method: str
+    namespace: dict[str, Any]
+    events: dict[str, str]
+    update: str                        # start-of-step code, "" for none
+    release_vars: list[str]
+    per_cell: dict[str, np.ndarray]    # variable -> (n_cells,) values
+    optional: frozenset[str] = frozenset()   # per_cell variables set only if the equations declare them
+    shared: dict[str, float] = field(default_factory=dict)   # (shared) variables, plain SI numbers
+
+
+def namespace_key(namespace: dict[str, Any]) -> tuple:
+    """A comparable fingerprint of a Brian2 namespace: numbers (and quantities) by dimension and
+    value, anything else (TimedArrays, Functions) by identity, so two roles share a group only
+    when every name their equations read has the same meaning."""
+    out = []
+    for name in sorted(namespace):
+        value = namespace[name]
+        if isinstance(value, (int, float, np.ndarray, np.number)):   # Brian2 quantities are arrays
+            arr = np.asarray(value, dtype=float)
+            out.append((name, str(getattr(value, "dim", "")), arr.shape, tuple(arr.ravel().tolist())))
+        else:
+            out.append((name, "object", id(value)))
+    return tuple(out)
+
+
+def _membrane_spec(b2: Any, plan: Plan, role: RolePlan, index: int, layout: Layout, stim: StimulusTables,
+                   receptors: list[str], suffix_of: dict[str, str], release_vars: list[str],
+                   params: dict[str, np.ndarray], mg_needed: bool, notes: list[str]) -> CellSpec:
+    """The model of a membrane role (AdEx or Hodgkin-Huxley) with its per-cell starting values.
+
+    The key holds everything that enters the equations or the namespace: cell model, receptor
+    set, Hodgkin-Huxley currents, stimulus text, noise specs and the equation text itself.
+    Voltage-clamped roles and roles with release accumulators get their own name in the key
+    (their series resistance, holding potential and release events are not merged).
+    """
+    n = layout.n_cells
+    terms = [models.ReceptorTerm(suffix_of[r], plan.receptors[r].mg_block) for r in receptors]
+    clamp = role.mode == "voltage clamp"
+    stim_expr, decl, stim_cells = (None, (), {})
+    if stim.library is not None and role.name in stim.library.columns:
+        stim_expr, decl, stim_cells = _stimulus_text(role, layout, stim.library, stim.column_slot, stim.scale_slot)
+    noise_terms, noise_ns = _noise_namespace(b2, role, layout.dt)
+    inputs = models.CellInputs(stimulus=stim_expr, declarations=decl, clamp=clamp, noise=noise_terms,
+                               sweep_time=layout.sweep_time)
+    namespace: dict[str, Any] = dict(stim.namespace, **noise_ns)
+    for term, rname in zip(terms, receptors):
+        rec = plan.receptors[rname]
+        pgg, pgx, pxx = models.propagator(rec.rise, rec.decay, layout.dt)
+        namespace[f"E_{term.suffix}"] = rec.reversal * b2.volt
+        namespace[f"scale_{term.suffix}"] = float(rec.scale)
+        namespace[f"P_gg_{term.suffix}"] = pgg
+        namespace[f"P_gx_{term.suffix}"] = pgx * b2.second
+        namespace[f"P_xx_{term.suffix}"] = pxx
+    events = {f"release_{s}": f"deliveries_{s} > 0.5" for s in release_vars}
+    hold = (np.zeros(plan.n_repeat) if role.holding_current is None
+            else _per_repeat(plan, role.holding_current, f"holding current of role {role.name!r}"))
+    per_cell: dict[str, np.ndarray] = {}
+    optional: frozenset[str] = frozenset()
+    update = ""
+    channels: list[str] = []
+    if role.model == "adex":
+        kind = "adex"
+        linear = False
+        if clamp:
+            rs = float(role.series_resistance)
+            tau_clamp = float(np.min(rs * params["C"] / (1.0 + rs * params["gL"])))
+            linear = tau_clamp < CLAMP_EXPONENTIAL_STEPS * layout.dt
+            if linear:
+                notes.append(f"role {role.name!r}: the clamp time constant ({tau_clamp * 1e3:.3g} ms) is "
+                             f"below {CLAMP_EXPONENTIAL_STEPS:g} time steps; the cell is integrated by "
+                             f"exponential Euler")
+        equations = models.adex_equations(terms, inputs, release_vars, linear=linear, gated=role.silenced)
+        threshold = models.ADEX_GATED_THRESHOLD if role.silenced else "v > Vcut"
+        reset, refractory = "v = Vr\nw += b", "t_ref"
+        if role.silenced:
+            # a lesion took the spike current away: the cell integrates its inputs but cannot fire
+            per_cell["spike_gate"] = np.zeros(n)
+        method = "exponential_euler" if linear else "euler"
+        if clamp:
+            v0, found = models.clamp_rest("adex", params, float(role.holding_potential),
+                                          float(role.series_resistance), hold)
+            if not found.all():
+                notes.append(f"role {role.name!r}: no steady state of the voltage clamp found in "
+                             f"{int((~found).sum())} repeat(s); started at the holding potential")
+        else:
+            v0, has_rest = models.adex_rest(params, hold)
+            if not has_rest.all():
+                notes.append(f"role {role.name!r}: no resting state under the holding current in "
+                             f"{int((~has_rest).sum())} repeat(s); started at EL")
+        for key in models.ADEX_PARAMS:
+            per_cell[key] = layout.expand(params[key])
+        per_cell["v"] = layout.expand(v0)
+        per_cell["w"] = layout.expand(params["a"] * (v0 - params["EL"]))
+        if linear:
+            per_cell["I_exp"] = layout.expand(params["gL"] * params["DeltaT"]
+                                              * np.exp((v0 - params["VT"]) / params["DeltaT"]))
+            for t in terms:
+                if t.mg_block:
+                    per_cell[f"B_{t.suffix}"] = models.mg_unblocked(
+                        layout.expand(v0), float(plan.conditions["magnesium"]))
+            update = models.adex_linear_update(terms)
+        else:
+            extras = models.load_conductances(inputs)
+            if extras:
+                update = models.conductance_update(terms, extras)
+            elif terms:
+                update = models.conductance_update(terms)
+    else:
+        kind = "hh"
+        # leave out currents no repeat has: fewer state variables, same dynamics
+        channels = [ch for ch, g in models.hh_channels(role.model).items() if np.any(params[g] > 0)]
+        equations = models.hh_equations(role.model, channels, terms, inputs, release_vars, exprel=EXPREL_NAME)
+        namespace[EXPREL_NAME] = exprel_function(b2)
+        threshold, reset, refractory = HH_SPIKE_THRESHOLD, None, HH_SPIKE_THRESHOLD
+        method = "exponential_euler"
+        v0, hh_values, optional = _hh_cells(plan, role, params, hold, clamp, layout, notes)
+        per_cell.update(hh_values)
+        if terms:
+            update = models.hh_conductance_update(terms)
+    per_cell["I_hold"] = layout.expand(hold)
+    per_cell.update(stim_cells)
+    if clamp:
+        per_cell["V_hold"] = np.full(n, float(role.holding_potential))
+        per_cell["R_series"] = np.full(n, float(role.series_resistance))
+    if noise_terms:
+        rng = np.random.default_rng([int(plan.seed), _NOISE_STREAM, index])
+        for term, spec in zip(noise_terms, role.noise):
+            # start each process in its stationary distribution
+            per_cell[f"noise_{term.index}"] = spec.mean + spec.sd * rng.standard_normal(n)
+        update = "\n".join(part for part in (update, models.noise_update(noise_terms)) if part)
+    shared: dict[str, float] = {}
+    if mg_needed and any(t.mg_block for t in terms):
+        shared["Mg"] = float(plan.conditions["magnesium"])
+        if kind == "hh":
+            for t in terms:
+                if t.mg_block:
+                    per_cell[f"B_{t.suffix}"] = models.mg_unblocked(
+                        layout.expand(v0), float(plan.conditions["magnesium"]))
+    key: tuple = (kind, role.model, tuple(receptors), tuple(channels), stim_expr, decl,
+                  tuple(astuple(spec) for spec in role.noise), equations, update, method,
+                  tuple(sorted(events.items())), namespace_key(namespace), tuple(sorted(shared.items())))
+    if clamp or release_vars:
+        key += (("alone", role.name),)
+    return CellSpec(role=role.name, kind=kind, key=key, equations=equations, threshold=threshold,
+                    reset=reset, refractory=refractory, method=method, namespace=namespace, events=events,
+                    update=update, release_vars=list(release_vars), per_cell=per_cell, optional=optional,
+                    shared=shared)
+
+
+#: Longest run of joined identifiers in the name of a merged object; longer lists are abbreviated.
+MERGED_NAME_LENGTH = 40
+
+
+def merged_name(prefix: str, idents: list[str], used: set[str]) -> str:
+    """A readable Brian2 name for one object standing for several protocol identifiers.
+
+    ``prefix`` and the identifiers joined by ``_`` (``<first>_and_<k>_more`` when that is long),
+    made unique against ``used`` (which it extends). The name also stays clear of every
+    ``cell_<role>`` name, so the monitors ``trace_<name>`` and ``spikes_<name>`` cannot meet
+    a role's own ``trace_<role>`` and ``spikes_<role>``.
+    """
+    joined = "_".join(idents)
+    if len(joined) > MERGED_NAME_LENGTH:
+        joined = f"{idents[0]}_and_{len(idents) - 1}_more"
+    base = prefix + joined
+    name, k = base, 1
+    while name in used or "cell_" + name in used:
+        k += 1
+        name = f"{base}_{k}"
+    used.add(name)
+    return name
+
+
+def cell_groups(plan: Plan, specs: dict[str, CellSpec], names: dict[tuple[str, str], str],
+                merge: bool) -> list[tuple[str, list[str]]]:
+    """Which roles share a Brian2 group: (group name, roles in block order), in plan order.
+
+    Membrane roles with equal :attr:`CellSpec.key` share one group when ``merge`` is on; spike
+    sources and every other role stay alone. A group of one role keeps the role's own object
+    name (``cell_<role>``); a merged group is called ``cells_<role>_<role>...``.
+    """
+    members: dict[tuple, list[str]] = {}
+    for role in plan.roles:
+        spec = specs.get(role.name)
+        key = spec.key if (spec is not None and merge) else ("alone", role.name)
+        members.setdefault(key, []).append(role.name)
+    used = set(names.values())
+    out = []
+    for roles in members.values():
+        if len(roles) == 1:
+            out.append((names[("role", roles[0])], roles))
+        else:
+            out.append((merged_name("cells_", [models.identifier(r) for r in roles], used), roles))
+    return out
+
+
+def _neuron_group(b2: Any, name: str, specs: list[CellSpec], layout: Layout) -> Any:
+    """One NeuronGroup holding the cells of ``specs`` (one key) role after role."""
+    first = specs[0]
+    for spec in specs[1:]:
+        if spec.key != first.key or list(spec.per_cell) != list(first.per_cell):
+            raise AssertionError(f"internal error: roles {first.role!r} and {spec.role!r} cannot share a group")
+    group = b2.NeuronGroup(layout.n_cells * len(specs), first.equations, threshold=first.threshold,
+                           reset=first.reset, refractory=first.refractory, method=first.method,
+                           namespace=first.namespace, events=first.events or None, name=name)
+    for var in first.per_cell:
+        if var in first.optional and var not in group.variables:
+            continue
+        values = (first.per_cell[var] if len(specs) == 1
+                  else np.concatenate([spec.per_cell[var] for spec in specs]))
+        setattr(group, var + "_", values)
+    for var, value in first.shared.items():
+        setattr(group, var + "_", value)
+    if first.update:
+        group.run_regularly(first.update, when="start", name=f"{name}_conductance")
+    for s in first.release_vars:
+        event = f"release_{s}"
+        group.set_event_schedule(event, when="after_synapses", order=0)
+        group.run_on_event(event, f"released_{s} = 0\ndeliveries_{s} = 0", when="after_synapses", order=2)
+    return group
+
+
+def synapse_classes(parts: list[tuple[SynapsePlan, SynapseArrays]], blocks: dict[str, RoleBlock],
+                    merge: bool, recorded: bool) -> list[list[tuple[SynapsePlan, SynapseArrays]]]:
+    """Which role-to-role synapses share one Brian2 Synapses object, in plan order.
+
+    Synapses whose sources lie in one group and whose targets lie in one group, with the same
+    receptors and the same release kind (stochastic or not), merge when ``merge`` is on and
+    release is not ``recorded`` (a recorded synapse writes its own per-cell accumulator).
+    """
+    classes: dict[tuple, list[tuple[SynapsePlan, SynapseArrays]]] = {}
+    for syn, arrays in parts:
+        key: tuple = (blocks[syn.pre].group, blocks[syn.post].group, arrays.receptors, arrays.stochastic)
+        if recorded or not merge:
+            key = ("alone", syn.name)
+        classes.setdefault(key, []).append((syn, arrays))
+    return list(classes.values())
+
+
+def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: bool = True,
                   progress: Callable[[str], None] | None = None) -> Built:
     """Build the Brian2 network of a plan (one network for all repeats and sweeps).
 
@@ -707,6 +1098,11 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
         b2: the imported ``brian2`` module.
         record_release: add per-cell release accumulators and event monitors (role-to-role
             synapses).
+        merge: let roles with identical equations share one NeuronGroup, and their synapses
+            one Synapses object (:func:`cell_groups`, :func:`synapse_classes`); every Brian2
+            object costs a fixed overhead per time step. False builds one object per role and
+            per synapse. Deterministic results agree either way to rounding; random draws
+            (stochastic release, noise) come in another order.
         progress: optional callable receiving stage messages.
 
     Returns:
@@ -776,6 +1172,10 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
     for role in plan.roles:
         if role.name in needed:
             needed[role.name].update(spec.receptor for spec in role.poisson)
+    if plan.network is not None:
+        for edge in plan.network.edges:
+            if edge.post in needed:
+                needed[edge.post].update(edge.weights)
     receptors_on = {r: [rec for rec in plan.receptors if rec in needed[r]] for r in membranes}
     suffix_of: dict[str, str] = {}
     for rname in plan.receptors:
@@ -791,159 +1191,69 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
     objects: list[Any] = []
     built = Built(network=None, layout=layout, names=names, notes=notes)
     n = layout.n_cells
+    stim = _stimulus_tables(b2, plan, layout)
 
-    # the waveform library and, in the sequential layout, the per-sweep tables that index it
-    lib = stimulus_library(plan, layout)
-    stim_ns: dict[str, Any] = {"sweep_interval": layout.interval * b2.second}
-    column_slot: dict[str, int] = {}
-    scale_slot: dict[str, int] = {}
-    if lib is not None:
-        stim_ns["stim_library"] = b2.TimedArray(lib.values, dt=layout.dt * b2.second, name="stim_library")
-        if layout.kind == "sequential":
-            varying = [r for r, cols in lib.columns.items() if np.any(cols != cols[0])]
-            if varying:
-                table = np.stack([lib.columns[r] for r in varying], axis=1).astype(float)
-                column_slot = {r: k for k, r in enumerate(varying)}
-                stim_ns["sweep_columns"] = b2.TimedArray(table, dt=layout.dt * b2.second, name="sweep_columns")
-            if lib.scales:
-                table = np.concatenate([lib.scales[r].T for r in lib.scales], axis=1)
-                offsets = np.cumsum([0] + [lib.scales[r].shape[0] for r in lib.scales])
-                scale_slot = {r: int(o) for r, o in zip(lib.scales, offsets)}
-                stim_ns["sweep_scale"] = b2.TimedArray(table, dt=layout.dt * b2.second, name="sweep_scale")
-
-    say(f"building {len(plan.roles)} cell group(s) of {n} cell(s) ({layout.kind} layout)")
+    specs: dict[str, CellSpec] = {}
     for index, role in enumerate(plan.roles):
-        name = names[("role", role.name)]
         if role.name in spike_sources:
-            idx, times = spike_sources[role.name]
-            group = b2.SpikeGeneratorGroup(n, idx, times * b2.second, name=name)
-            objects.append(group)
-            built.cells[role.name] = group
             if role.recorded:
                 notes.append(f"role {role.name!r} fires at explicit times and has no membrane trace")
             continue
-        terms = [models.ReceptorTerm(suffix_of[r], plan.receptors[r].mg_block)
-                 for r in receptors_on[role.name]]
-        clamp = role.mode == "voltage clamp"
-        stim_expr, decl, per_cell = (None, (), {})
-        if lib is not None and role.name in lib.columns:
-            stim_expr, decl, per_cell = _stimulus_text(role, layout, lib, column_slot, scale_slot)
-        noise_terms, noise_ns = _noise_namespace(b2, role, layout.dt)
-        inputs = models.CellInputs(stimulus=stim_expr, declarations=decl, clamp=clamp, noise=noise_terms,
-                                   sweep_time=layout.sweep_time)
-        namespace: dict[str, Any] = dict(stim_ns, **noise_ns)
-        for term, rname in zip(terms, receptors_on[role.name]):
-            rec = plan.receptors[rname]
-            pgg, pgx, pxx = models.propagator(rec.rise, rec.decay, layout.dt)
-            namespace[f"E_{term.suffix}"] = rec.reversal * b2.volt
-            namespace[f"scale_{term.suffix}"] = float(rec.scale)
-            namespace[f"P_gg_{term.suffix}"] = pgg
-            namespace[f"P_gx_{term.suffix}"] = pgx * b2.second
-            namespace[f"P_xx_{term.suffix}"] = pxx
-        events = {f"release_{s}": f"deliveries_{s} > 0.5" for s in release_on[role.name]}
-        hold = (np.zeros(plan.n_repeat) if role.holding_current is None
-                else _per_repeat(plan, role.holding_current, f"holding current of role {role.name!r}"))
-        update = ""
-        if role.name in adex_params:
-            params = adex_params[role.name]
-            linear = False
-            if clamp:
-                rs = float(role.series_resistance)
-                tau_clamp = float(np.min(rs * params["C"] / (1.0 + rs * params["gL"])))
-                linear = tau_clamp < CLAMP_EXPONENTIAL_STEPS * layout.dt
-                if linear:
-                    notes.append(f"role {role.name!r}: the clamp time constant ({tau_clamp * 1e3:.3g} ms) is "
-                                 f"below {CLAMP_EXPONENTIAL_STEPS:g} time steps; the cell is integrated by "
-                                 f"exponential Euler")
-            eqs = models.adex_equations(terms, inputs, release_on[role.name], linear=linear)
-            group = b2.NeuronGroup(n, eqs, threshold="v > Vcut", reset="v = Vr\nw += b",
-                                   refractory="t_ref", method="exponential_euler" if linear else "euler",
-                                   namespace=namespace, events=events or None, name=name)
-            if clamp:
-                v0, found = models.clamp_rest("adex", params, float(role.holding_potential),
-                                              float(role.series_resistance), hold)
-                if not found.all():
-                    notes.append(f"role {role.name!r}: no steady state of the voltage clamp found in "
-                                 f"{int((~found).sum())} repeat(s); started at the holding potential")
-            else:
-                v0, has_rest = models.adex_rest(params, hold)
-                if not has_rest.all():
-                    notes.append(f"role {role.name!r}: no resting state under the holding current in "
-                                 f"{int((~has_rest).sum())} repeat(s); started at EL")
-            for key in models.ADEX_PARAMS:
-                setattr(group, key + "_", layout.expand(params[key]))
-            group.v_ = layout.expand(v0)
-            group.w_ = layout.expand(params["a"] * (v0 - params["EL"]))
-            if linear:
-                group.I_exp_ = layout.expand(params["gL"] * params["DeltaT"]
-                                             * np.exp((v0 - params["VT"]) / params["DeltaT"]))
-                for t in terms:
-                    if t.mg_block:
-                        setattr(group, f"B_{t.suffix}_", models.mg_unblocked(
-                            layout.expand(v0), float(plan.conditions["magnesium"])))
-                update = models.adex_linear_update(terms)
-            else:
-                extras = models.load_conductances(inputs)
-                if extras:
-                    update = models.conductance_update(terms, extras)
-                elif terms:
-                    update = models.conductance_update(terms)
-            built.adex_roles.append(role.name)
+        params = adex_params[role.name] if role.name in adex_params else hh_params[role.name]
+        specs[role.name] = _membrane_spec(b2, plan, role, index, layout, stim, receptors_on[role.name],
+                                          suffix_of, release_on[role.name], params, mg_needed, notes)
+    grouping = cell_groups(plan, specs, names, merge)
+    say(f"building {len(grouping)} cell group(s) for {len(plan.roles)} role(s), {n} cell(s) each "
+        f"({layout.kind} layout)")
+    for gname, members in grouping:
+        if members[0] in spike_sources:
+            idx, times = spike_sources[members[0]]
+            group = b2.SpikeGeneratorGroup(n, idx, times * b2.second, name=gname)
         else:
-            group, v0 = _hh_group(b2, plan, role, hh_params[role.name], hold, terms, inputs,
-                                  release_on[role.name], namespace, events, layout, name, notes)
-            if terms:
-                update = models.hh_conductance_update(terms)
-            built.hh_roles.append(role.name)
-        group.I_hold_ = layout.expand(hold)
-        for var, values in per_cell.items():
-            setattr(group, var + "_", values)
-        if clamp:
-            group.V_hold_ = float(role.holding_potential)
-            group.R_series_ = float(role.series_resistance)
-        if noise_terms:
-            rng = np.random.default_rng([int(plan.seed), _NOISE_STREAM, index])
-            for term, spec in zip(noise_terms, role.noise):
-                # start each process in its stationary distribution
-                setattr(group, f"noise_{term.index}_", spec.mean + spec.sd * rng.standard_normal(n))
-            update = "\n".join(part for part in (update, models.noise_update(noise_terms)) if part)
-        if mg_needed and any(t.mg_block for t in terms):
-            group.Mg_ = float(plan.conditions["magnesium"])
-            if role.name in hh_params:
-                for t in terms:
-                    if t.mg_block:
-                        setattr(group, f"B_{t.suffix}_", models.mg_unblocked(
-                            layout.expand(v0), float(plan.conditions["magnesium"])))
-        if update:
-            group.run_regularly(update, when="start", name=f"{name}_conductance")
-        for s in release_on[role.name]:
-            event = f"release_{s}"
-            group.set_event_schedule(event, when="after_synapses", order=0)
-            group.run_on_event(event, f"released_{s} = 0\ndeliveries_{s} = 0",
-                               when="after_synapses", order=2)
+            group = _neuron_group(b2, gname, [specs[r] for r in members], layout)
         objects.append(group)
-        built.cells[role.name] = group
+        built.groups[gname] = list(members)
+        if len(members) > 1:
+            built.merged[gname] = ("role", tuple(members))
+        for k, r in enumerate(members):
+            built.blocks[r] = RoleBlock(gname, k * n, n)
+            built.cells[r] = group
+    for role in plan.roles:
+        if role.name in specs:
+            (built.adex_roles if specs[role.name].kind == "adex" else built.hh_roles).append(role.name)
 
     say(f"building {len(plan.synapses)} synapse group(s)")
+    parts: list[tuple[SynapsePlan, SynapseArrays]] = []
     for syn in plan.synapses:
-        name = names[("synapse", syn.name)]
         sp = syn_params[syn.name]
-        rel_var = release_suffix(plan, syn) if record_release else None
         sites = np.round(sp["n_sites"]).astype(np.int64)
         repeats = np.flatnonzero(sp["connected"] & (sites > 0))
         cells, rep_of_cell = layout.cells_of_repeats(repeats)
-        group, count = _tm_synapses(b2, plan, name, built.cells[syn.pre], built.cells[syn.post], cells, cells,
-                                    rep_of_cell, sp, syn.receptors, syn.stochastic, suffix_of, rel_var)
-        built.n_synapses[syn.name] = count
-        if group is None:
+        arrays = _tm_arrays(plan, built.blocks[syn.pre].cells(cells), built.blocks[syn.post].cells(cells),
+                            rep_of_cell, sp, syn.receptors, syn.stochastic, suffix_of)
+        built.n_synapses[syn.name] = arrays.size
+        if arrays.size == 0:
             notes.append(f"synapse {syn.name!r} connects no repeat; it is left out of the network")
         else:
-            objects.append(group)
-        if record_release:
-            post = built.cells[syn.post]
-            mon = b2.EventMonitor(post, f"release_{rel_var}", variables=[f"released_{rel_var}"],
+            parts.append((syn, arrays))
+    used = set(names.values()) | set(built.groups)
+    for members in synapse_classes(parts, built.blocks, merge, record_release):
+        first = members[0][0]
+        if len(members) == 1:
+            name = names[("synapse", first.name)]
+        else:
+            name = merged_name("syns_", [models.identifier(s.name) for s, _ in members], used)
+            built.merged[name] = ("synapse", tuple(s.name for s, _ in members))
+        rel_var = release_suffix(plan, first) if record_release else None
+        objects.append(_tm_object(b2, name, built.cells[first.pre], built.cells[first.post],
+                                  SynapseArrays.concat([arrays for _, arrays in members]), rel_var))
+    if record_release:
+        for syn in plan.synapses:
+            # roles receiving recorded synapses are never merged, so the monitor's cells are the role's
+            rel_var = release_suffix(plan, syn)
+            mon = b2.EventMonitor(built.cells[syn.post], f"release_{rel_var}", variables=[f"released_{rel_var}"],
                                   when="after_synapses", order=1,
-                                  name="release_" + name.removeprefix("syn_"))
+                                  name="release_" + names[("synapse", syn.name)].removeprefix("syn_"))
             objects.append(mon)
             built.release_monitors[syn.name] = (mon, f"released_{rel_var}")
 
@@ -969,7 +1279,7 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
                                on_pre=f"x_{suffix_of[spec.receptor]}_post += poisson_jump",
                                namespace={"poisson_jump": jump * b2.siemens / b2.second},
                                name=f"{name}_poisson{k}_syn")
-            link.connect(i=np.arange(n), j=np.arange(n))
+            link.connect(i=np.arange(n), j=built.blocks[role.name].cells())
             mon = b2.SpikeMonitor(source, record=True, name=f"inputs_{name.removeprefix('cell_')}_poisson{k}")
             objects += [source, link, mon]
             built.input_monitors[key] = (mon, np.arange(n))
@@ -998,27 +1308,80 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False,
                                         np.tile(per_gen, n_gen) * b2.second, name=name)
         valid = np.flatnonzero(np.round(ap["n_sites"])[gen_param] > 0)
         group, count = _tm_synapses(b2, plan, f"{name}_syn", source, built.cells[act.target], valid,
-                                    gen_target[valid], gen_param[valid], ap, act.receptors, act.stochastic,
-                                    suffix_of)
+                                    built.blocks[act.target].cells(gen_target[valid]), gen_param[valid], ap,
+                                    act.receptors, act.stochastic, suffix_of)
         built.n_synapses[act.name] = count
         mon = b2.SpikeMonitor(source, record=True, name=f"inputs_{name.removeprefix('act_')}")
         objects += [source, mon] + ([group] if group is not None else [])
         built.input_monitors[act.name] = (mon, gen_target)
 
-    for role in plan.roles:
-        ident = names[("role", role.name)].removeprefix("cell_")
-        group = built.cells[role.name]
-        if role.recorded and role.name in membranes:
-            var = "I_clamp" if role.mode == "voltage clamp" else "v"
-            mon = b2.StateMonitor(group, var, record=True, dt=layout.sample_dt * b2.second,
-                                  name=f"trace_{ident}")
-            objects.append(mon)
-            built.trace_monitors[role.name] = mon
-            built.trace_variables[role.name] = var
-            built.trace_units[role.name] = "A" if var == "I_clamp" else "V"
-        spikes = b2.SpikeMonitor(group, name=f"spikes_{ident}")
-        objects.append(spikes)
-        built.spike_monitors[role.name] = spikes
-
+    if plan.network is not None:
+        objects += _embedded_network(b2, plan, built, suffix_of, say)
+    objects += _monitors(b2, plan, built, membranes)
     built.network = b2.Network(*objects, name="protolang_network")
     return built
+
+
+def _embedded_network(b2: Any, plan: Plan, built: Built, suffix_of: dict[str, str],
+                      say: Callable[[str], None]) -> list[Any]:
+    """The population of an embedded run, its background drive, its connections and its spike monitor."""
+    from .network import POPULATION_NAME, build_population, edge_values
+
+    net = plan.network
+    if built.layout.kind != "sequential":
+        raise AssertionError("internal error: an embedded network in the replicas layout")
+    say(f"building the embedded network: {net.population.size} cells, {len(net.edges)} connection set(s)")
+    group, objects = build_population(b2, plan, suffix_of, built.layout.dt)
+    objects.append(group)
+    built.population = group
+
+    def endpoint(name: str, index: np.ndarray) -> tuple[Any, np.ndarray]:
+        if name == POPULATION_NAME:
+            return group, index
+        # a role's cell k of the sequential layout is its repeat k
+        return built.cells[name], built.blocks[name].cells(index)
+
+    for edge in net.edges:
+        source, pre = endpoint(edge.pre, edge.pre_index)
+        target, post = endpoint(edge.post, edge.post_index)
+        arrays = _tm_arrays(plan, pre, post, np.arange(edge.size), edge_values(edge), edge.weights,
+                            edge.stochastic, suffix_of)
+        built.n_synapses[f"network:{edge.name}"] = arrays.size
+        if arrays.size:
+            objects.append(_tm_object(b2, f"net_{edge.name}", source, target, arrays))
+    built.population_spikes = b2.SpikeMonitor(group, name=f"spikes_{POPULATION_NAME}")
+    objects.append(built.population_spikes)
+    return objects
+
+
+def _monitors(b2: Any, plan: Plan, built: Built, membranes: list[str]) -> list[Any]:
+    """One trace monitor (recorded roles' cells only) and one spike monitor per group.
+
+    A group of one role names them ``trace_<role>`` and ``spikes_<role>``; a merged group
+    ``trace_<group>`` and ``spikes_<group>``.
+    """
+    layout, roles = built.layout, {r.name: r for r in plan.roles}
+    out = []
+    for gname, members in built.groups.items():
+        group = built.cells[members[0]]
+        ident = built.names[("role", members[0])].removeprefix("cell_") if len(members) == 1 else gname
+        recorded = [r for r in members if roles[r].recorded and r in membranes]
+        if recorded:
+            variables = {"I_clamp" if roles[r].mode == "voltage clamp" else "v" for r in recorded}
+            if len(variables) != 1:
+                raise AssertionError(f"internal error: group {gname!r} mixes clamped and unclamped roles")
+            var = variables.pop()
+            cells = np.concatenate([built.blocks[r].cells() for r in recorded])
+            mon = b2.StateMonitor(group, var, record=True if len(recorded) == len(members) else cells,
+                                  dt=layout.sample_dt * b2.second, name=f"trace_{ident}")
+            out.append(mon)
+            for k, r in enumerate(recorded):
+                built.trace_monitors[r] = mon
+                built.trace_rows[r] = slice(k * layout.n_cells, (k + 1) * layout.n_cells)
+                built.trace_variables[r] = var
+                built.trace_units[r] = "A" if var == "I_clamp" else "V"
+        spikes = b2.SpikeMonitor(group, name=f"spikes_{ident}")
+        out.append(spikes)
+        for r in members:
+            built.spike_monitors[r] = spikes
+    return out

@@ -1,8 +1,9 @@
 """Monitor read-back: takes raw monitor arrays of one run and its layout, hands out per-repeat, per-sweep arrays for Recordings.
 
-Plain numpy; replica ``r`` of the replicas layout is repeat ``r // n_sweeps``, sweep
-``r % n_sweeps``; in the sequential layout cell ``k`` is repeat ``k`` and sweep ``s`` is the
-window ``[s*interval, s*interval + sweep_length)`` of continuous time.
+Plain numpy. A role's events are first taken out of the group it may share with other roles
+(:func:`block_events`); then replica ``r`` of the replicas layout is repeat ``r // n_sweeps``,
+sweep ``r % n_sweeps``; in the sequential layout cell ``k`` is repeat ``k`` and sweep ``s`` is
+the window ``[s*interval, s*interval + sweep_length)`` of continuous time.
 """
 
 from __future__ import annotations
@@ -10,6 +11,23 @@ from __future__ import annotations
 import numpy as np
 
 from protolang.engine.build import Layout
+
+
+def block_events(cells: np.ndarray, start: int, size: int, *columns: np.ndarray) -> tuple[np.ndarray, ...]:
+    """The events of one role's cells ``start .. start + size - 1`` in a group shared by several
+    roles (:class:`protolang.engine.build.RoleBlock`), renumbered from 0 for the role.
+
+    Args:
+        cells: (n_events,) group cell index of each event (a monitor's ``i``).
+        start, size: the role's block in the group.
+        columns: (n_events,) arrays of the same events (times, amounts), filtered alike.
+
+    Returns:
+        (role cell index, *columns) of the events inside the block, in their original order.
+    """
+    cells = np.asarray(cells, dtype=np.int64)
+    inside = (cells >= start) & (cells < start + size)
+    return (cells[inside] - start,) + tuple(np.asarray(c)[inside] for c in columns)
 
 
 def cut_traces(values: np.ndarray, layout: Layout) -> np.ndarray:

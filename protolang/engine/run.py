@@ -17,7 +17,7 @@ import numpy as np
 from protolang.engine import collect
 from protolang.engine.build import Built, build_network, span_of
 from protolang.engine.recordings import Recordings
-from protolang.language.errors import ProtocolError, error, suggest
+from protolang.language.errors import Collector, ProtocolError, error, suggest
 from protolang.plan.model import Plan
 
 TARGETS = ("numpy", "cython", "auto")
@@ -103,13 +103,25 @@ def _resolve_target(target: str, b2: Any) -> str:
 
 
 def _describe(name: str, built: Built | None, plan: Plan) -> tuple[str, Any]:
-    """Plain words and span for a Brian2 object name of this plan (or one it contains)."""
+    """Plain words and span for a Brian2 object name of this plan (or one it contains).
+
+    An object standing for several roles or synapses (merged) names them all and is cited at
+    the first one's span.
+    """
     names = built.names if built is not None else {}
+    candidates = [(obj_name, kind, (ident,)) for (kind, ident), obj_name in names.items()]
+    if built is not None:
+        candidates += [(obj_name, kind, idents) for obj_name, (kind, idents) in built.merged.items()]
     # longest names first, so "cell_pre_x_..." is not taken for role "pre"
-    for (kind, ident), obj_name in sorted(names.items(), key=lambda item: -len(item[1])):
+    for obj_name, kind, idents in sorted(candidates, key=lambda item: -len(item[0])):
         if name == obj_name or name.startswith(obj_name + "_"):
             word = {"role": "cell role", "synapse": "synapse"}.get(kind, "extracellular activation")
-            return f"{word} {ident!r}", span_of(plan, obj_name, ident)
+            first = idents[0]
+            if len(idents) > 1:
+                word = {"role": "cell roles", "synapse": "synapses"}[kind]
+                return (f"{word} {', '.join(repr(i) for i in idents)}",
+                        span_of(plan, names.get((kind, first), obj_name), first))
+            return f"{word} {first!r}", span_of(plan, obj_name, first)
     return f"simulation object {name!r}", span_of(plan, name)
 
 
@@ -148,18 +160,30 @@ def _trace_runaway(built: Built, role: str, raw_traces: dict[str, np.ndarray]) -
     return ~np.isfinite(values).all(axis=1)
 
 
+def _role_traces(built: Built) -> dict[str, np.ndarray]:
+    """Each recorded role's rows of its group's trace monitor: (n_cells, n_recorded_samples)."""
+    read: dict[str, np.ndarray] = {}
+    out = {}
+    for role, mon in built.trace_monitors.items():
+        if mon.name not in read:
+            read[mon.name] = np.asarray(getattr(mon, built.trace_variables[role] + "_"))
+        out[role] = read[mon.name][built.trace_rows[role]]
+    return out
+
+
 def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]) -> None:
     """Raise a ProtocolError naming the first cell whose integration ran away.
 
     AdEx roles: forward Euler fails silently here: the spike reset catches upward runaways, so the checks
     are the final state, the recorded traces and the largest ``dt*g_total/C`` seen in the run.
+    Each role is checked on its own cells of its (possibly shared) group.
     """
     layout = built.layout
     for role in built.adex_roles:
-        group = built.cells[role]
+        group, block = built.cells[role], built.blocks[role]
         what, span = _describe(built.names[("role", role)], built, plan)
-        v = np.asarray(group.v_)
-        bad = ~(np.isfinite(v) & np.isfinite(np.asarray(group.w_)) & (np.abs(v) < MAX_PLAUSIBLE_V))
+        v = block.take(group.v_)
+        bad = ~(np.isfinite(v) & np.isfinite(block.take(group.w_)) & (np.abs(v) < MAX_PLAUSIBLE_V))
         if role in raw_traces and not bad.any():
             bad = _trace_runaway(built, role, raw_traces)
         if bad.any():
@@ -168,11 +192,11 @@ def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]
                            f"or check C, gL, tau_w and the synaptic conductances of this cell")
         if "euler_load" not in group.variables:
             continue
-        load = np.asarray(group.euler_load_)
+        load = block.take(group.euler_load_)
         worst = float(load.max(initial=0.0))
         if worst >= 1.0:
             cell = int(np.argmax(load))
-            c_value = float(np.asarray(group.C_)[cell])
+            c_value = float(block.take(group.C_)[cell])
             raise error(f"numerical blow-up in {what} ({_where(cell, layout)}): its total "
                         f"conductance reached {worst * c_value / plan.dt * 1e9:.3g} nS, too large "
                         f"for a {plan.dt * 1e3:g} ms time step with C = {c_value * 1e12:g} pF", span,
@@ -185,9 +209,9 @@ def _check_stability(built: Built, plan: Plan, raw_traces: dict[str, np.ndarray]
     for role in built.hh_roles:
         # exponential Euler keeps these stable for any conductance; a runaway here means
         # parameters no time step can follow (or a bug), so say where it happened
-        group = built.cells[role]
+        group, block = built.cells[role], built.blocks[role]
         what, span = _describe(built.names[("role", role)], built, plan)
-        v = np.asarray(group.v_)
+        v = block.take(group.v_)
         bad = ~(np.isfinite(v) & (np.abs(v) < MAX_PLAUSIBLE_V))
         if role in raw_traces and not bad.any():
             bad = _trace_runaway(built, role, raw_traces)
@@ -205,7 +229,7 @@ def _raise_runaway(what: str, span, bad: np.ndarray, layout, hint: str):
                 expected="parameters and conductances the time step can follow", hint=hint)
 
 
-def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
+def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False, merge: bool = True,
              progress: Callable[[str], None] | None = None) -> Recordings:
     """Simulate a plan with Brian2 and return its recordings.
 
@@ -214,6 +238,9 @@ def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
         target: Brian2 code-generation target: "numpy", "cython" (compiled; cache under
             :func:`cython_cache_dir`) or "auto" (cython if a C++ compiler works, else numpy).
         record_release: also record the amount released at every presynaptic spike.
+        merge: simulate roles with identical equations in one Brian2 group and their synapses
+            in one Synapses object (see :func:`protolang.engine.build.build_network`); the
+            recordings have the same shape and meaning either way.
         progress: optional callable receiving short stage messages.
 
     Returns:
@@ -249,7 +276,7 @@ def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
         with catch_logs() as logs:
             t0 = time.perf_counter()
             try:
-                built = build_network(plan, b2, record_release=record_release, progress=say)
+                built = build_network(plan, b2, record_release=record_release, merge=merge, progress=say)
             except (ProtocolError, AssertionError):
                 raise
             except Exception as exc:  # Brian2 rejected something while building
@@ -270,9 +297,14 @@ def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
             t2 = time.perf_counter()
         warnings = [f"{name}: {msg}" for level, name, msg in logs
                     if not any(w in str(msg) for w in _EXPECTED_WARNINGS)]
-        raw_traces = {role: np.asarray(getattr(mon, built.trace_variables[role] + "_"))
-                      for role, mon in built.trace_monitors.items()}
+        raw_traces = _role_traces(built)
         _check_stability(built, plan, raw_traces)
+        if built.population is not None:
+            from .network import check_population
+
+            fail = Collector()
+            check_population(plan, built.population, fail)
+            fail.raise_if_any()
         say("collecting recordings")
         recordings = _collect(plan, built, raw_traces, record_release)
     finally:
@@ -293,6 +325,7 @@ def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
         "simulated_s": built.layout.duration,
         "seed": int(plan.seed),
         "n_synapses": dict(built.n_synapses),
+        "merged_objects": {name: list(idents) for name, (_, idents) in built.merged.items()},
         "notes": list(built.notes),
         "warnings": warnings,
     })
@@ -316,18 +349,27 @@ def _collect(plan: Plan, built: Built, raw_traces: dict[str, np.ndarray],
             rng = np.random.default_rng([int(plan.seed), index])
             cut += rng.normal(0.0, float(role.noise_sd), size=cut.shape)
         traces[role.name] = cut
+    # each group's spikes read once, then each role's block in its own cell numbers
+    group_spikes: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+    role_spikes: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     spikes = {}
     for role in plan.roles:
-        mon = built.spike_monitors[role.name]
-        spikes[role.name] = collect.split_spikes(np.asarray(mon.i[:]), np.asarray(mon.t_[:]), layout)
+        block = built.blocks[role.name]
+        if block.group not in group_spikes:
+            mon = built.spike_monitors[role.name]
+            group_spikes[block.group] = (np.asarray(mon.i[:]), np.asarray(mon.t_[:]))
+        cells, times = collect.block_events(group_spikes[block.group][0], block.start, block.size,
+                                            group_spikes[block.group][1])
+        role_spikes[role.name] = (cells, times)
+        spikes[role.name] = collect.split_spikes(cells, times, layout)
     release: dict[str, np.ndarray] = {}
     if record_release:
         for syn in plan.synapses:
             mon, var = built.release_monitors[syn.name]
-            pre = built.spike_monitors[syn.pre]
-            release[syn.name] = collect.release_table(
-                np.asarray(pre.i[:]), np.asarray(pre.t_[:]), np.asarray(mon.i[:]),
-                np.asarray(mon.t_[:]), np.asarray(getattr(mon, var + "_")), layout)
+            post = built.blocks[syn.post]
+            cells, times, amounts = collect.block_events(np.asarray(mon.i[:]), post.start, post.size,
+                                                         np.asarray(mon.t_[:]), np.asarray(getattr(mon, var + "_")))
+            release[syn.name] = collect.release_table(*role_spikes[syn.pre], cells, times, amounts, layout)
     inputs: dict[str, list[list[np.ndarray]]] = {}
     for key, (mon, cell_of_source) in built.input_monitors.items():
         if mon is None:
@@ -335,7 +377,15 @@ def _collect(plan: Plan, built: Built, raw_traces: dict[str, np.ndarray],
             continue
         cells = cell_of_source[np.asarray(mon.i[:], dtype=np.int64)]
         inputs[key] = collect.split_spikes(cells, np.asarray(mon.t_[:]), layout)
+    population: dict = {}
+    if built.population_spikes is not None:
+        pop = plan.network.population
+        population = {"times": np.asarray(built.population_spikes.t_[:], dtype=float),
+                      "cells": np.asarray(built.population_spikes.i[:], dtype=np.int64),
+                      "class_names": list(pop.class_names), "class_index": np.asarray(pop.class_index),
+                      "repeat": np.asarray(pop.repeat), "cell_ids": np.asarray(pop.cell_ids),
+                      "interval": float(layout.interval), "sweep_length": float(layout.sweep_length)}
     time_axis = np.arange(layout.n_samples) * layout.sample_dt
     units = {role: built.trace_units[role] for role in traces}
     return Recordings(sample_dt=layout.sample_dt, time=time_axis, traces=traces, spikes=spikes,
-                      release=release, inputs=inputs, meta={"trace_units": units})
+                      release=release, inputs=inputs, meta={"trace_units": units}, population=population)
