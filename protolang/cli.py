@@ -77,6 +77,16 @@ def cmd_plan(args) -> int:
         rates = {k: float(v[0]) for k, v in r.params.items() if k.startswith("phi")}
         if rates:
             print(f"kinetics   {r.name} ({r.model}) gating rate factors " + ", ".join(f"{k} {v:.4g}" for k, v in rates.items()))
+    for lesion in plan.lesions:
+        what = [f"{n} {k} cells" for k, n in lesion.cells.items()]
+        what += [f"{n} {k} connections" for k, n in lesion.connections.items()]
+        scope = " (summed over repeats)" if lesion.per_repeat else ""
+        print(f"lesion     {lesion.text}: " + (", ".join(what) or "nothing in this circuit") + scope)
+    if plan.network is not None:
+        summary = plan.network.to_plain()
+        print(f"network    region {summary['region']}: {summary['cells']} cells, {summary['connections']} connections "
+              f"({summary['release_sites']} release sites), estimated {summary['memory_estimate_GB']:g} GB of "
+              f"{summary['memory_limit_GB']:g} GB allowed")
     for note in plan.notes:
         print(note)
     return 0

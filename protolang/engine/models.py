@@ -204,6 +204,9 @@ class CellInputs:
         clamp: a series-resistance voltage clamp (constants ``V_hold``, ``R_series`` per cell).
         noise: Ornstein-Uhlenbeck inputs, summed.
         sweep_time: expression of the time within the sweep, for the noise windows.
+        background: Ornstein-Uhlenbeck inputs that run all the time with per-cell mean and
+            kick (``bg_mean_k``, ``bg_kick_k``; zero for cells a background line does not reach):
+            the ongoing drive of an embedded network.
     """
 
     stimulus: str | None = None
@@ -211,6 +214,7 @@ class CellInputs:
     clamp: bool = False
     noise: tuple[NoiseTerm, ...] = ()
     sweep_time: str = "t"
+    background: tuple[NoiseTerm, ...] = ()
 
 
 def input_equations(inputs: CellInputs) -> tuple[list[str], list[str]]:
@@ -245,18 +249,34 @@ def input_equations(inputs: CellInputs) -> tuple[list[str], list[str]]:
                 lines.append(f"noise_{k} : amp")
         lines.append("I_noise = " + " + ".join(terms) + " : amp")
         drive.append("I_noise")
+    if inputs.background:
+        terms = []
+        for n in inputs.background:
+            k, unit = n.index, "siemens" if n.conductance else "amp"
+            lines += [f"bg_{k} : {unit}", f"bg_mean_{k} : {unit} (constant)", f"bg_kick_{k} : {unit} (constant)"]
+            terms.append(f"bg_{k}*int(bg_{k} > 0*siemens)*(bg_E_{k} - v)" if n.conductance else f"bg_{k}")
+        lines.append("I_background = " + " + ".join(terms) + " : amp")
+        drive.append("I_background")
     return drive, lines
+
+
+def background_update(background: tuple[NoiseTerm, ...] | list[NoiseTerm]) -> str:
+    """Start-of-step code of the background Ornstein-Uhlenbeck inputs (the exact step of
+    :func:`noise_update`, with per-cell mean and kick and a shared ``bg_decay_k``)."""
+    return "\n".join(f"bg_{n.index} = bg_mean_{n.index} + (bg_{n.index} - bg_mean_{n.index})*bg_decay_{n.index}"
+                     f" + bg_kick_{n.index}*randn()" for n in background)
 
 
 def load_conductances(inputs: CellInputs) -> list[str]:
     """Conductances besides gL and the receptors that forward Euler must follow (clamp, noise)."""
     out = ["1/R_series"] if inputs.clamp else []
     out += [f"abs(noise_{n.index})" for n in inputs.noise if n.conductance]
+    out += [f"abs(bg_{n.index})" for n in inputs.background if n.conductance]
     return out
 
 
 def adex_equations(receptors: list[ReceptorTerm], inputs: CellInputs, release_vars: list[str],
-                   *, linear: bool = False) -> str:
+                   *, linear: bool = False, gated: bool = False) -> str:
     """Brian2 equations of an AdEx cell with per-neuron conductances (one set per receptor).
 
     Args:
@@ -266,6 +286,9 @@ def adex_equations(receptors: list[ReceptorTerm], inputs: CellInputs, release_va
         linear: write the membrane equation linear in v for the exponential Euler method: the
             exponential spike current (``I_exp``) and the magnesium block (``B_<r>``) become
             variables refreshed at the start of each step (:func:`adex_linear_update`).
+        gated: multiply the exponential spike current by a per-cell constant ``spike_gate``
+            (1 normal, 0 silenced: the cell integrates its inputs but cannot fire; the threshold
+            must test the gate too, see :data:`ADEX_GATED_THRESHOLD`).
 
     Returns:
         Equation text; constants ``E_<r>``, ``scale_<r>``, the stimulus library, the noise
@@ -273,6 +296,8 @@ def adex_equations(receptors: list[ReceptorTerm], inputs: CellInputs, release_va
     """
     extra_drive, extra_lines = input_equations(inputs)
     spike = "I_exp" if linear else "gL*DeltaT*exp((v - VT)/DeltaT)"
+    if gated:
+        spike = f"spike_gate*{spike}"
     drive = ["gL*(EL - v)", spike, "- w", "I_hold"] + extra_drive
     if receptors:
         drive.append("I_syn")
@@ -305,10 +330,16 @@ def adex_equations(receptors: list[ReceptorTerm], inputs: CellInputs, release_va
         lines.append("euler_load : 1")
     for name in ADEX_PARAMS:
         lines.append(f"{name} : {ADEX_UNITS[name]} (constant)")
+    if gated:
+        lines.append("spike_gate : 1 (constant)")
     for s in release_vars:
         lines.append(f"released_{s} : 1")
         lines.append(f"deliveries_{s} : 1")
     return "\n".join(lines)
+
+
+#: Threshold of AdEx cells written with ``gated=True``: a silenced cell never reaches it.
+ADEX_GATED_THRESHOLD = "v > Vcut and spike_gate > 0.5"
 
 
 def conductance_update(receptors: list[ReceptorTerm], extra_conductances: tuple[str, ...] | list[str] = ()) -> str:

@@ -31,6 +31,11 @@ class Recordings:
             the source spikes of each extracellular activation (its plan name; one event per
             activated source and activation time, before the synaptic delay).
         meta: engine facts (target, wall time, layout, versions, trace units).
+        population: spikes of the embedded network's population (empty in isolated mode):
+            ``times`` (s, run time) and ``cells`` (index into the population) of every spike,
+            per-cell ``class_names``/``class_index``, ``repeat`` and ``cell_ids``, and the run's
+            ``interval`` and ``sweep_length`` (s), which place sweep ``s`` at
+            ``[s*interval, s*interval + sweep_length)`` of run time.
     """
 
     sample_dt: float
@@ -40,6 +45,7 @@ class Recordings:
     release: dict[str, np.ndarray] = field(default_factory=dict)
     meta: dict = field(default_factory=dict)
     inputs: dict[str, list[list[np.ndarray]]] = field(default_factory=dict)
+    population: dict = field(default_factory=dict)
 
     @property
     def n_repeat(self) -> int:

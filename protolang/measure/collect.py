@@ -130,7 +130,7 @@ def collect(plan: "Plan", recordings: "Recordings",
     Returns:
         ``{table name: DataFrame}`` for the tables the plan's collectors produce
         (``responses``, ``connections``, ``pathways``, ``spikes``, ``cell_sweeps``,
-        ``cells``, ``classes``); rows of several measures feeding the same table are
+        ``cells``, ``classes``, ``populations``, ``bursts``); rows of several measures feeding the same table are
         concatenated.
 
     Raises:
@@ -155,6 +155,13 @@ def collect(plan: "Plan", recordings: "Recordings",
         elif measure.collector == "spikes":
             _options(measure)
             parts.setdefault("spikes", []).append(collect_spikes(plan, recordings, measure))
+        elif measure.collector == "activity":
+            from .population import collect_activity
+
+            _options(measure)
+            populations, bursts = collect_activity(plan, recordings, measure)
+            parts.setdefault("populations", []).append(populations)
+            parts.setdefault("bursts", []).append(bursts)
         else:
             raise AssertionError(f"internal error: unknown collector {measure.collector!r} reached collect() "
                                  f"(known: {', '.join(COLLECTORS)})")

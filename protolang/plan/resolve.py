@@ -378,6 +378,9 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             role_noise += bg_noise
             role_poisson += bg_poisson
         silenced = pick.cell_class in lesions.silenced
+        if silenced and cell_class.model in HH_MODELS:
+            # a Hodgkin-Huxley cell without sodium conductance cannot fire (the AdEx engine gates instead)
+            params["gNa"] = np.zeros(n_repeat)
         if silenced and st.spikes is not None:
             notes_extra.append(f"{name} fires at explicit times although its class {pick.cell_class} is silenced: "
                                f"a spike source has no membrane to silence")

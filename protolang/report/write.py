@@ -176,12 +176,14 @@ def write_figures(fig_dir: str | os.PathLike, plan: "Plan", recordings: "Recordi
     Returns:
         ``{file name: Path}``; empty when there is no ``connections`` table.
     """
+    written: dict[str, Path] = {}
+    if recordings.population and "populations" in tables:
+        written.update(_network_figures(Path(fig_dir), recordings, tables))
     if "connections" not in tables or "responses" not in tables or tables["connections"].empty:
-        return {}
+        return written
     fig_dir = Path(fig_dir)
     fig_dir.mkdir(parents=True, exist_ok=True)
     connections, responses = tables["connections"], tables["responses"]
-    written: dict[str, Path] = {}
     for pathway, group in connections.groupby("pathway", sort=False):
         name = slug(str(pathway))
         resp = responses[responses["pathway"] == pathway]
@@ -191,6 +193,31 @@ def write_figures(fig_dir: str | os.PathLike, plan: "Plan", recordings: "Recordi
         fig = _summary_figure(group, resp, str(pathway))
         written[f"{name}_summary.png"] = _save_figure(fig, fig_dir / f"{name}_summary.png")
     return written
+
+
+def _network_figures(fig_dir: Path, recordings: "Recordings", tables: dict) -> dict[str, Path]:
+    """Raster and population rate of the first repeat's network in its first analysed sweep."""
+    from .network_figures import population_rate_figure, raster_figure
+
+    pop = recordings.population
+    fig_dir.mkdir(parents=True, exist_ok=True)
+    first = tables["populations"].iloc[0]
+    start = float(first["discard_ms"]) / 1e3
+    stop = float(pop["sweep_length"])
+    repeat = np.asarray(pop["repeat"])
+    members = np.flatnonzero(repeat == repeat.min())
+    local = np.full(repeat.size, -1, dtype=np.int64)
+    local[members] = np.arange(members.size)
+    cells = np.asarray(pop["cells"], dtype=np.int64)
+    keep = local[cells] >= 0
+    times, cells = np.asarray(pop["times"], float)[keep], local[cells[keep]]
+    classes = np.asarray(pop["class_names"], dtype=object)[np.asarray(pop["class_index"])[members]]
+    bursts = tables.get("bursts")
+    if bursts is not None and len(bursts):
+        bursts = bursts[(bursts["repeat"] == 1) & (bursts["sweep"] == 1)]
+    return {"network_raster.png": raster_figure(fig_dir / "network_raster.png", times, cells, classes, start, stop),
+            "network_rate.png": population_rate_figure(fig_dir / "network_rate.png", times, cells, classes,
+                                                       start, stop, bursts=bursts)}
 
 
 # Unit of the amplitude columns -> (SI trace to that unit, what the trace is).
@@ -331,7 +358,8 @@ def write_recordings_npz(out_dir: str | os.PathLike, recordings: "Recordings") -
     Keys: ``time`` (s), ``sample_dt`` (s), ``trace__<role>`` ((n_repeat, n_sweeps,
     n_samples) V), ``spike_times__<role>`` (all spike times, s, repeat-major then sweep
     order) with ``spike_counts__<role>`` ((n_repeat, n_sweeps) spikes per sweep),
-    ``release__<synapse>`` and ``meta_json`` (the engine facts as JSON text).
+    ``release__<synapse>``, ``meta_json`` (the engine facts as JSON text) and, for an embedded
+    run, ``population__<key>`` arrays with ``population_json`` (the population's spikes).
 
     Args:
         out_dir: the run folder (created if missing).
@@ -356,6 +384,13 @@ def write_recordings_npz(out_dir: str | os.PathLike, recordings: "Recordings") -
         arrays[f"spike_times__{role}"] = np.concatenate(flat) if flat else np.zeros(0)
     for name, rel in recordings.release.items():
         arrays[f"release__{name}"] = np.asarray(rel)
+    if recordings.population:
+        arrays["population_json"] = np.asarray(json.dumps(
+            {k: v for k, v in recordings.population.items() if not isinstance(v, np.ndarray)},
+            default=_json_default))
+        for k, v in recordings.population.items():
+            if isinstance(v, np.ndarray):
+                arrays[f"population__{k}"] = v
 
     def write(tmp: str) -> None:
         with open(tmp, "wb") as fh:
@@ -388,5 +423,10 @@ def read_recordings_npz(path: str | os.PathLike) -> "Recordings":
             n_sweeps = counts.shape[1]
             spikes[role] = [pieces[r * n_sweeps:(r + 1) * n_sweeps] for r in range(counts.shape[0])]
         release = {k[len("release__"):]: data[k] for k in data.files if k.startswith("release__")}
+        population = {}
+        if "population_json" in data.files:
+            population = json.loads(str(data["population_json"]))
+            population.update({k[len("population__"):]: data[k] for k in data.files if k.startswith("population__")})
         return Recordings(sample_dt=float(data["sample_dt"]), time=data["time"], traces=traces,
-                          spikes=spikes, release=release, meta=json.loads(str(data["meta_json"])))
+                          spikes=spikes, release=release, meta=json.loads(str(data["meta_json"])),
+                          population=population)
