@@ -70,14 +70,15 @@ def collect_activity(plan: "Plan", recordings: "Recordings", measure: "MeasurePl
         t_r, c_r = times[mine], local[cells[mine]]
         for sweep, start, stop in analysis_windows(recordings, discard):
             table = N.summarise_population(t_r, c_r, names[members], start, stop, count_bin=width, state_bin=width)
-            table.insert(0, "sweep", sweep + 1)
-            table.insert(0, "repeat", int(r) + 1)
+            # repeats and sweeps count from 0, as in every other table
+            table.insert(0, "sweep", sweep)
+            table.insert(0, "repeat", int(r))
             rows.append(table)
             b = N.population_bursts(t_r, c_r, members.size, start, stop)
             if len(b):
                 b = b.copy()
-                b.insert(0, "sweep", sweep + 1)
-                b.insert(0, "repeat", int(r) + 1)
+                b.insert(0, "sweep", sweep)
+                b.insert(0, "repeat", int(r))
                 # burst times relative to the sweep start, as every other sweep time in the tables
                 for col in ("start_ms", "stop_ms", "peak_time_ms"):
                     if col in b:

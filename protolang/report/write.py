@@ -214,7 +214,7 @@ def _network_figures(fig_dir: Path, recordings: "Recordings", tables: dict) -> d
     classes = np.asarray(pop["class_names"], dtype=object)[np.asarray(pop["class_index"])[members]]
     bursts = tables.get("bursts")
     if bursts is not None and len(bursts):
-        bursts = bursts[(bursts["repeat"] == 1) & (bursts["sweep"] == 1)]
+        bursts = bursts[(bursts["repeat"] == 0) & (bursts["sweep"] == 0)]
     return {"network_raster.png": raster_figure(fig_dir / "network_raster.png", times, cells, classes, start, stop),
             "network_rate.png": population_rate_figure(fig_dir / "network_rate.png", times, cells, classes,
                                                        start, stop, bursts=bursts)}
