@@ -200,3 +200,8 @@ def test_network_measure_needs_a_network(tmp_path):
 def test_simulate_embedded_needs_a_network_block(tmp_path):
     with pytest.raises(ProtocolError, match="without a 'network:' block"):
         load(tmp_path, "simulate embedded\n")
+
+
+def test_discarding_the_whole_sweep_is_an_error(tmp_path):
+    text = errors_of(tmp_path, NET.format(radius=150, memory="") + "measure network:\n    activity, discard 2 s\n")
+    assert "leaves nothing of a 402 ms sweep" in text and ":21:15:" in text

@@ -467,6 +467,10 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
             opts = {k: v[1] for k, v in spec["options"].items()}
             for o in item.options:
                 opts[o.name] = o.value.si
+                if item.collector == "activity" and o.name == "discard" and o.value.si >= length:
+                    raise error(f"discarding {o.value} leaves nothing of a {display(length, 'time')} sweep",
+                                o.span, expected=f"a time shorter than the sweep ({display(length, 'time')})",
+                                hint="discard less, or lengthen the sweeps with `lasting`")
             measures.append(MeasurePlan(cell=block.cell, collector=item.collector, source=item.source,
                                         options=opts, span=str(item.span)))
             if item.source is not None and not any(s.pre == item.source and s.post == block.cell for s in synapses):
