@@ -446,3 +446,12 @@ def test_figures_write_png(tmp_path):
     assert sorted(p.name for p in tmp_path.rglob("*")) == ["fig", "plain.png", "raster.png", "rate.png"]
     with pytest.raises(ValueError, match="start_ms"):
         NF.population_rate_figure(tmp_path / "bad.png", times, cells, classes, 0.0, duration, bursts={"x": [1]})
+
+
+def test_near_silent_population_gets_no_state_label():
+    # chi of a handful of spikes says which cells happened to fire, not how they are coordinated
+    # (protolang's rule, no single source): 3 spikes over 3 cells are below 2 spikes per active cell
+    times = np.array([0.1, 0.5, 0.9])
+    cells = np.array([0, 1, 2])
+    table = N.summarise_population(times, cells, np.array(["a"] * 10), 0.0, 1.0)
+    assert (table["state"] == "undetermined").all()

@@ -34,7 +34,8 @@ Definitions (each is repeated where it is coded):
   the pair matrix.
 * **population burst**: an interval where the smoothed population rate stays above
   ``max(k x median rate, floor, Poisson chance level)``; details in :func:`population_bursts`.
-* **state**: "synchronous" when chi >= :data:`SYNCHRONY_THRESHOLD`, else "asynchronous".
+* **state**: "synchronous" when chi >= :data:`SYNCHRONY_THRESHOLD`, else "asynchronous";
+  "undetermined" with fewer than :data:`STATE_MIN_SPIKES_PER_CELL` spikes per active cell.
 
 Nothing loops over spikes: spikes are binned with ``np.bincount`` on ``cell * n_bins + bin``
 and per-cell statistics come from sorted flat indices, so memory grows with the number
@@ -583,6 +584,11 @@ def state_label(chi: float, threshold: float = SYNCHRONY_THRESHOLD) -> str:
     return "synchronous" if chi >= thr else "asynchronous"
 
 
+#: A state label needs at least this many spikes per active cell in the window: chi of a
+#: near-silent population reflects which few cells happened to fire, not their coordination.
+STATE_MIN_SPIKES_PER_CELL = 2.0
+
+
 SUMMARY_COLUMNS = (
     "cell_class", "n_cells", "window_ms", "n_spikes", "active_fraction", "rate_mean_Hz", "rate_sd_Hz",
     "isi_cv_mean", "n_cells_isi_cv", "synchrony_chi", "synchrony_n_cells", "chi_independent_level",
@@ -606,7 +612,8 @@ def summarise_population(times, cells, classes, start: float, stop: float, *,
     ``synchrony_n_cells`` active cells with ``chi_independent_level`` = 1/sqrt(that
     number) (chi expected from independent cells), ``count_correlation_mean`` over
     ``count_correlation_n_pairs`` pairs, ``n_bursts``, ``burst_rate_Hz`` (bursts per
-    second), ``burst_threshold_Hz`` and ``state`` (:func:`state_label`). Each class is
+    second), ``burst_threshold_Hz`` and ``state`` (:func:`state_label`; "undetermined" below
+    :data:`STATE_MIN_SPIKES_PER_CELL` spikes per active cell). Each class is
     analysed as its own population (its rate per cell of that class, its own bursts).
 
     Args:
@@ -673,6 +680,7 @@ def summarise_population(times, cells, classes, start: float, stop: float, *,
             "n_bursts": len(bursts),
             "burst_rate_Hz": len(bursts) / window,
             "burst_threshold_Hz": bursts.attrs["threshold_Hz"],
-            "state": state_label(sync.chi, threshold),
+            "state": (state_label(sync.chi, threshold)
+                      if gt.size >= STATE_MIN_SPIKES_PER_CELL * max(sync.n_cells, 1) else "undetermined"),
         })
     return pd.DataFrame(rows, columns=list(SUMMARY_COLUMNS))

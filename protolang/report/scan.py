@@ -23,6 +23,9 @@ SCAN_MEASURES = (
     ("pathways", "failure_rate_mean", "failure rate of the first response"),
     ("pathways", "cv_mean", "CV of the first response"),
     ("spikes", "rate_Hz", "firing rate (Hz)"),
+    ("populations", "synchrony_chi", "synchrony chi (Golomb)"),
+    ("populations", "rate_mean_Hz", "population firing rate (Hz per cell)"),
+    ("populations", "isi_cv_mean", "ISI CV"),
 )
 
 
@@ -107,7 +110,7 @@ def write_scan_figures(fig_dir: str | os.PathLike, tables: dict) -> dict[str, Pa
         if not scans:
             continue
         x, group = scans[0], (scans[1] if len(scans) > 1 else None)
-        keys = ["pathway"] if "pathway" in df.columns else (["role"] if "role" in df.columns else [])
+        keys = next(([k] for k in ("pathway", "role", "cell_class") if k in df.columns), [])
         fig = _new_figure(6.0, 4.0)
         ax = fig.add_subplot()
         for series_key, part in (df.groupby(keys + ([group] if group else []), sort=True) if keys or group
@@ -126,10 +129,16 @@ def write_scan_figures(fig_dir: str | os.PathLike, tables: dict) -> dict[str, Pa
                 for g in (series_key if isinstance(series_key, tuple) else (series_key,)))
             ax.errorbar(stats[x], stats["mean"], yerr=stats["std"].fillna(0.0), marker="o", capsize=3,
                         label=name or None)
+        if column == "synchrony_chi":
+            from ..measure.network import SYNCHRONY_THRESHOLD
+
+            ax.axhline(SYNCHRONY_THRESHOLD, color="0.5", linestyle="--", linewidth=0.8,
+                       label=f"state threshold {SYNCHRONY_THRESHOLD:g}")
         name, _, unit = x[len("scan_"):].rpartition("_")
         ax.set_xlabel(f"@{name} ({unit})" if name else f"@{unit}")
         ax.set_ylabel(label)
-        spread = "across connections" if table == "pathways" else "across cells and sweeps"
+        spread = {"pathways": "across connections", "populations": "across repeats and sweeps"}.get(
+            table, "across cells and sweeps")
         ax.set_title(f"{label}: mean +- SD {spread}", fontsize=9)
         if ax.get_legend_handles_labels()[0]:
             ax.legend(fontsize=7)
