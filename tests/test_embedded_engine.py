@@ -95,3 +95,21 @@ def test_silenced_role_does_not_fire(tmp_path):
     assert plan.role("pre").silenced
     assert all(len(s) == 0 for rep in result.recordings.spikes["pre"] for s in rep)
     assert _spikes_of_class(result, "pyramidal_deep")[0] == 0
+
+
+@pytest.mark.slow
+def test_upper_layer_turns_synchronous_with_calcium(tmp_path):
+    # The demo claim of README/network_calcium_scan: with nothing but calcium changed, the invented
+    # upper layer is asynchronous at 1.0 mM and synchronous at 2.0 mM (Golomb's chi against the
+    # 0.3 convention; the chi of independent cells here is about 1/sqrt(799) = 0.035).
+    text = (Path(__file__).resolve().parents[1] / "demo" / "network_calcium_scan.protocol").read_text()
+    text = text.replace("1.0 mM to 2.0 mM in 5 steps", "1.0 mM, 2.0 mM").replace(
+        '"slab.circuit.yaml"', f'"{CIRCUIT}"')
+    path = tmp_path / "ca.protocol"
+    path.write_text(text)
+    result = protolang.load(path).run(target="numpy")
+    table = result.tables["populations"]
+    rows = table[table["cell_class"] == "all cells"].set_index("scan_calcium_mM")
+    assert rows.loc[1.0, "state"] == "asynchronous" and rows.loc[1.0, "synchrony_chi"] < 0.15
+    assert rows.loc[2.0, "state"] == "synchronous" and rows.loc[2.0, "synchrony_chi"] > 0.3
+    assert rows.loc[2.0, "n_bursts"] >= 1 and rows.loc[1.0, "n_bursts"] == 0
