@@ -68,9 +68,28 @@ class CellPick:
 
 
 @node
+class PatchPick:
+    """``patch is 8 of pyramidal_deep within 100 um``: a multi-cell patch of ``count`` cells of one
+    class, each within ``radius`` of the first; its cells are ``<name>_1`` ... ``<name>_<count>``
+    (:func:`protolang.language.patch.expand_patches`)."""
+    name: str
+    count: int
+    cell_class: str
+    radius: Quantity
+    span: Span | None = _span()
+    class_span: Span | None = _span()
+
+    @property
+    def members(self) -> tuple[str, ...]:
+        return tuple(f"{self.name}_{k}" for k in range(1, self.count + 1))
+
+
+@node
 class Cells:
     picks: tuple[CellPick, ...]
     repeat: int = 1
+    # the patches a protocol had before its patches were expanded into single cells
+    patches: tuple[PatchPick, ...] = field(default=(), compare=False, repr=False)
     repeat_span: Span | None = _span()
     span: Span | None = _span()
 
@@ -319,9 +338,11 @@ class Activate:
 
 @node
 class Stimulate:
+    """``stimulate CELL:`` with its stimuli; on a patch, ``turn`` spaces its cells' turns."""
     cell: str
     items: tuple
     span: Span | None = _span()
+    turn: Quantity | None = None
 
 
 # --- measures -------------------------------------------------------------------------

@@ -46,7 +46,8 @@ def format_protocol(p: ast.Protocol) -> str:
     if p.recordings:
         sections.append([_recording(r) for r in p.recordings])
     for stim in p.stimuli:
-        sections.append([f"stimulate {stim.cell}:"] + [INDENT + _stimulus(i) for i in stim.items])
+        turn = f" in turn every {_quantity(stim.turn)}" if stim.turn is not None else ""
+        sections.append([f"stimulate {stim.cell}{turn}:"] + [INDENT + _stimulus(i) for i in stim.items])
     for measure in p.measures:
         sections.append([f"measure {measure.cell}:"]
                         + [INDENT + _measure_item(i) for i in measure.items])
@@ -98,6 +99,9 @@ def _bath_item(item) -> str:
 def _cells(cells: ast.Cells) -> list[str]:
     lines = ["cells:"]
     for pick in cells.picks:
+        if isinstance(pick, ast.PatchPick):
+            lines.append(f"{INDENT}{pick.name} is {pick.count} of {pick.cell_class} within {_quantity(pick.radius)}")
+            continue
         line = f"{pick.name} is {pick.cell_class}"
         if pick.constraints:
             line += " " + ", ".join(_constraint(c) for c in pick.constraints)

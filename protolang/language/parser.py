@@ -585,7 +585,11 @@ _MEASURE_OPTIONS = {
     "step": ("current", None, True),
     "bin": ("time", 0.0, False),
     "discard": ("time", 0.0, True),
+    "distance_bin": ("length", 0.0, False),
+    "detection_factor": ("number", 0.0, False),
 }
+# Most cells a multi-cell patch holds (rigs hold up to about a dozen pipettes).
+MAX_PATCH_CELLS = 12
 # The name a `measure` block uses for the whole embedded network.
 NETWORK_TARGET = "network"
 # Most amplitudes a step family may list (it needs one sweep per amplitude).
@@ -948,6 +952,27 @@ class _Lowering(Transformer):
                             span=self._span(meta), class_span=self._tspan(cell_class))
         return _Pick(pick, self._tspan(name), tuple(constraints))
 
+    def patch_pick(self, meta, children) -> _Pick | None:
+        name, count, cell_class, radius = children
+        n = self._count(count, "the number of patched cells", minimum=2)
+        ok = n is not None
+        if n is not None and n > MAX_PATCH_CELLS:
+            self.c.fail(f"a patch holds at most {MAX_PATCH_CELLS} cells, got {n}", count.span,
+                        expected=f"2 to {MAX_PATCH_CELLS} cells",
+                        hint=f"patch {MAX_PATCH_CELLS} cells and `repeat` the patch for more pairs")
+            ok = False
+        ok = self._quantity(radius, "length", "the patch radius", minimum=0.0, inclusive=False) is not None and ok
+        if not ok:
+            return None
+        node = ast.PatchPick(name=str(name), count=n, cell_class=str(cell_class), radius=radius,
+                             span=self._span(meta), class_span=self._tspan(cell_class))
+        return _Pick(node, self._tspan(name), ())
+
+    def in_turn(self, meta, children):
+        (q,) = children
+        self._quantity(q, "time", "the time between turns", minimum=0.0, inclusive=False)
+        return q
+
     def repeat(self, meta, children) -> _Repeat:
         n = self._count(children[0], "the repeat count")
         return _Repeat(n if n is not None else 1, self._span(meta))
@@ -957,6 +982,8 @@ class _Lowering(Transformer):
         repeat: _Repeat | None = None
         names: dict[str, Span] = {}
         for line in children:
+            if line is None:
+                continue
             if isinstance(line, _Repeat):
                 if repeat is not None:
                     self.c.fail("duplicate 'repeat' line", line.span, expected="one 'repeat N'",
@@ -980,6 +1007,14 @@ class _Lowering(Transformer):
             for constraint in pick.constraints:
                 node = constraint.node
                 ref = node.of if isinstance(node, ast.Within) else node.source
+                if ref in earlier and isinstance(next(p.node for p in picks if p.node.name == ref), ast.PatchPick):
+                    self.c.fail(f"{ref!r} is a patch of several cells", constraint.name_span,
+                                expected="one selected cell: " + ", ".join(
+                                    n for n in earlier if not isinstance(
+                                        next(p.node for p in picks if p.node.name == n), ast.PatchPick))
+                                or "a single selected cell",
+                                hint=f"name one of its cells, e.g. {ref}_1, by selecting it on its own line")
+                    continue
                 if ref in earlier:
                     continue
                 if ref == pick.node.name:
@@ -1622,7 +1657,7 @@ class _Lowering(Transformer):
                             span=self._span(meta), class_span=self._tspan(cell_class))
 
     def stimulate(self, meta, children) -> ast.Stimulate:
-        cell, *items = children
+        cell, turn, *items = children
         self.references.append(_Reference(str(cell), self._tspan(cell), "stimulate"))
         items = [i for i in items if i is not None]
         spikes = [i for i in items if isinstance(i, ast.SpikeTimes)]
@@ -1637,7 +1672,7 @@ class _Lowering(Transformer):
                         expected="either 'spikes at ...' alone or other stimuli",
                         hint=f"explicit spike times replace the cell's membrane, so {what} "
                              "would have no effect; drop one of them")
-        return ast.Stimulate(cell=str(cell), items=tuple(items), span=self._span(meta))
+        return ast.Stimulate(cell=str(cell), items=tuple(items), span=self._span(meta), turn=turn)
 
     # --- result collectors ---------------------------------------------------------------
     def measure_item(self, meta, children) -> ast.MeasureItem:
@@ -1711,6 +1746,7 @@ class _Lowering(Transformer):
         cells = found.get("cells")
         if cells is not None:
             selected = [p.name for p in cells.picks]
+            selected += [m for p in cells.picks if isinstance(p, ast.PatchPick) for m in p.members]
             for ref in self.references:
                 if ref.name not in selected:
                     self.c.fail(f"unknown cell {ref.name!r} in '{ref.where}'", ref.span,
@@ -1718,6 +1754,8 @@ class _Lowering(Transformer):
                                 if selected else "a cell selected in 'cells:'",
                                 hint=suggest(ref.name, selected))
         self._check_drives(recordings, stimuli)
+        if cells is not None:
+            self._check_turns(cells, stimuli)
         sweeps = found.get("sweeps")
         if sweeps is not None and self.sweep_count_ok:
             self._check_families(sweeps, stimuli)
@@ -1757,6 +1795,20 @@ class _Lowering(Transformer):
                             lesions=lesions.items if lesions else (), network=network,
                             file=self.file, span=title.span,
                             circuit_span=circuit.path_span)
+
+    def _check_turns(self, cells: ast.Cells, stimuli: list[ast.Stimulate]) -> None:
+        """A patch is stimulated one cell at a time (`in turn every T`); a single cell is not."""
+        patches = {p.name for p in cells.picks if isinstance(p, ast.PatchPick)}
+        for block in stimuli:
+            if block.cell in patches and block.turn is None:
+                self.c.fail(f"stimulating every cell of the patch {block.cell!r} at once cannot tell which one "
+                            "evoked a response", block.span,
+                            expected=f"'stimulate {block.cell} in turn every T:'",
+                            hint="give a time between turns longer than one cell's stimuli and its responses, "
+                                 "e.g. 'in turn every 300 ms'")
+            elif block.cell not in patches and block.turn is not None:
+                self.c.fail(f"'in turn' applies to a patch, and {block.cell!r} is a single cell", block.turn.span,
+                            expected=f"'stimulate {block.cell}:'", hint="drop 'in turn every ...'")
 
     def _check_mode(self, simulate, network) -> None:
         """``simulate embedded`` needs a ``network:`` block; ``simulate isolated`` excludes one."""

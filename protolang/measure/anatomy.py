@@ -34,7 +34,10 @@ from statistics import NormalDist
 import numpy as np
 
 UM = 1e6                        # metres -> um for table columns
-DEFAULT_LATENCY = (0.5e-3, 8e-3)    # s after the presynaptic spike searched for the response peak
+# s after the presynaptic spike searched for the response peak; unitary EPSPs of cortical
+# pyramids in current clamp peak several ms after the spike (common practice, no single source)
+DEFAULT_LATENCY = (0.5e-3, 15e-3)
+PEAK_MARGIN = 1e-3               # s: an extremum this close to the window's end is a drift, not a peak
 DEFAULT_BASELINE = 3e-3         # s before the spike averaged as the baseline
 DEFAULT_NOISE_STRETCH = 10e-3   # s before the spike whose SD is the noise
 DEFAULT_FACTOR = 4.0            # detection threshold in noise SDs
@@ -217,7 +220,8 @@ class ResponseDetection:
         latency: presynaptic spike to the extremum (s).
         n_events: presynaptic spikes averaged.
         tested: at least ``min_events`` spikes were usable, so the verdict counts as a test.
-        detected: tested, and |amplitude| above both ``factor * noise`` and ``floor``.
+        detected: tested, |amplitude| above both ``factor * noise`` and ``floor``, and the
+            extremum a peak inside the latency window.
         threshold: the level |amplitude| had to exceed (V or A).
         time: (n_window,) time of each averaged sample from the spike (s).
         average: (n_window,) baseline-subtracted spike-triggered average (V or A).
@@ -239,7 +243,8 @@ def detect_response(trace, sample_dt: float, spike_times: Sequence, *,
                     baseline: float = DEFAULT_BASELINE,
                     noise_stretch: float = DEFAULT_NOISE_STRETCH,
                     factor: float = DEFAULT_FACTOR, floor: float = 0.0,
-                    min_events: int = DEFAULT_MIN_EVENTS, t0: float = 0.0) -> ResponseDetection:
+                    min_events: int = DEFAULT_MIN_EVENTS, t0: float = 0.0,
+                    detrend: bool = True) -> ResponseDetection:
     """Decide whether one postsynaptic cell responds to a presynaptic cell's spikes.
 
     Procedure:
@@ -247,7 +252,10 @@ def detect_response(trace, sample_dt: float, spike_times: Sequence, *,
     1. Every presynaptic spike of every sweep is aligned to the nearest sample; spikes
        whose window (``max(baseline, noise_stretch)`` before to ``latency[1]`` after) does
        not fit inside the sweep, or covers a non-finite sample, are skipped.
-    2. The windows are averaged (spike-triggered average, STA) and the mean of the STA over
+    2. The windows are averaged (spike-triggered average, STA). With ``detrend`` (default) a
+       straight line fitted to the STA over ``[spike - noise_stretch, spike)`` is carried on
+       through the response window and subtracted (a membrane still relaxing from the cell's
+       own earlier spikes would otherwise look like a response); then the mean over
        ``[spike - baseline, spike)`` is subtracted.
     3. The response is the sample of largest absolute deviation in
        ``[spike + latency[0], spike + latency[1]]``, its sign kept, so inhibitory responses
@@ -263,8 +271,10 @@ def detect_response(trace, sample_dt: float, spike_times: Sequence, *,
        false-positive rate about sevenfold. 100 samples bring the error to about 7 %.
        Removing the line keeps the decaying tail of the response to an earlier spike of a
        train (which the STA also averages) from counting as noise.
-    5. Connected when at least ``min_events`` spikes were used and |amplitude| exceeds
-       both ``factor x noise`` and ``floor``.
+    5. Connected when at least ``min_events`` spikes were used, |amplitude| exceeds both
+       ``factor x noise`` and ``floor``, and the extremum is a peak: it lies more than
+       :data:`PEAK_MARGIN` before the end of the latency window (a deflection still growing
+       there is a slow drift of the membrane, not a synaptic response).
 
     With white noise the per-pair false-positive rate at factor 4 is roughly the number of
     samples in the latency window times 2 Phi(-4) = 6.3e-5 (about 0.5 % for 76 samples at
@@ -344,22 +354,30 @@ def detect_response(trace, sample_dt: float, spike_times: Sequence, *,
                                  time=time, average=np.full(offsets.size, np.nan))
 
     sta = windows.mean(axis=0)
-    sta = sta - sta[n_pre - n_base:n_pre].mean()
-    search = sta[n_pre + l0:n_pre + l1 + 1]
-    j = int(np.argmax(np.abs(search)))
-    amplitude = float(search[j])
-    # The aligned sample sits (position - centre) samples before the true spike on average.
-    shift = float(np.mean(position - centre))
-    lat = (l0 + j - shift) * sample_dt
-
     stretch = sta[n_pre - n_noise:n_pre]
     x = np.arange(n_noise, dtype=float)
     slope, intercept = np.polyfit(x, stretch, 1)
     # ddof=2: the line fit used two degrees of freedom.
     noise = float(np.std(stretch - (slope * x + intercept), ddof=2))
+    # The membrane may still be relaxing when the spike comes (the cell's own earlier spikes, the
+    # tail of an earlier response): the baseline is that trend carried on through the response
+    # window, its level set by the last `baseline` before the spike.
+    if detrend:
+        trend = slope * (np.arange(offsets.size) - (n_pre - n_noise))
+        sta = sta - (trend - trend[n_pre - n_base:n_pre].mean())
+    sta = sta - sta[n_pre - n_base:n_pre].mean()
+    search = sta[n_pre + l0:n_pre + l1 + 1]
+    j = int(np.argmax(np.abs(search)))
+    amplitude = float(search[j])
+    # A response peaks inside the window; a deflection still growing at its end is the
+    # membrane's own slow trajectory (recovery from the cell's earlier spikes), not a response.
+    peaked = j < search.size - max(1, int(round(PEAK_MARGIN / sample_dt)))
+    # The aligned sample sits (position - centre) samples before the true spike on average.
+    shift = float(np.mean(position - centre))
+    lat = (l0 + j - shift) * sample_dt
     threshold = max(factor * noise, float(floor))
     tested = n_events >= min_events
-    detected = bool(tested and abs(amplitude) > threshold)
+    detected = bool(tested and peaked and abs(amplitude) > threshold)
     return ResponseDetection(amplitude=amplitude, noise=noise, latency=lat, n_events=n_events,
                              tested=bool(tested), detected=detected, threshold=threshold,
                              time=time, average=sta)

@@ -155,6 +155,12 @@ def collect(plan: "Plan", recordings: "Recordings",
         elif measure.collector == "spikes":
             _options(measure)
             parts.setdefault("spikes", []).append(collect_spikes(plan, recordings, measure))
+        elif measure.collector == "connectivity":
+            from .patch import collect_connectivity
+
+            _options(measure)
+            for name, table in collect_connectivity(plan, recordings, measure).items():
+                parts.setdefault(name, []).append(table)
         elif measure.collector == "activity":
             from .population import collect_activity
 

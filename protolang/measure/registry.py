@@ -8,7 +8,8 @@ Keys of an entry: ``needs_source`` (``COLLECTOR to SOURCE``), ``needs_recording`
 must be recorded; default: as ``needs_source``), ``needs_step`` (the kind of current step
 the protocol must give the cell), ``needs_engine`` (the collector simulates experiments of
 its own, so it cannot run on imported recordings), ``scope`` ("network" for collectors of
-``measure network:``, which read every simulated cell of an embedded run; default "cell"), ``options`` (name -> (dimension, SI
+``measure network:``, which read every simulated cell of an embedded run; "patch" for collectors of
+``measure PATCH:``, which read every cell of a multi-cell patch; default "cell"), ``options`` (name -> (dimension, SI
 default)), ``tables`` and ``description``.
 """
 
@@ -84,6 +85,21 @@ COLLECTORS: dict[str, dict] = {
         "description": "smallest step current that makes the cell fire, found by simulated test steps "
                        "(many currents per round, all cells at once); no step needed in the protocol",
     },
+    "connectivity": {
+        "needs_source": False,
+        "needs_recording": True,
+        "scope": "patch",
+        "options": {
+            # width of the distance bins of the connection-probability table
+            "distance_bin": ("length", 50e-6),
+            # a pair is connected when its spike-triggered average response exceeds this many noise SDs
+            "detection_factor": ("number", 4.0),
+        },
+        "tables": ["patch_pairs", "patch_connectivity", "patch_reciprocity", "patch_degrees"],
+        "description": "every ordered pair of a multi-cell patch tested for a connection by its spike-triggered "
+                       "average response; connection probability by distance with Wilson 95 % intervals, "
+                       "reciprocity, in- and out-degrees, each beside the circuit's true values",
+    },
     "activity": {
         "needs_source": False,
         "needs_recording": False,
@@ -99,6 +115,11 @@ COLLECTORS: dict[str, dict] = {
                        "synchrony (Golomb's chi), spike-count correlation, population bursts, state label",
     },
 }
+
+
+def patch_collectors() -> frozenset[str]:
+    """Collectors that read a whole multi-cell patch."""
+    return frozenset(k for k, v in COLLECTORS.items() if v.get("scope") == "patch")
 
 
 def option_defaults(collector: str) -> dict[str, float]:

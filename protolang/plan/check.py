@@ -105,8 +105,21 @@ def check_measures(p: ast.Protocol, circuit, out: Collector) -> None:
     recorded = {r.cell for r in p.recordings if r.mode != "off"}
     stimulated = {s.cell for s in p.stimuli}
     classes = {pick.name: pick.cell_class for pick in p.cells.picks}
+    patches = {x.name: x for x in p.cells.patches}
     for block in p.measures:
         on_network = block.cell == NETWORK_TARGET
+        if block.cell in patches:
+            for item in block.items:
+                spec = COLLECTORS.get(item.collector, {})
+                for opt in item.options:
+                    if opt.name not in spec.get("options", {}):
+                        out.fail(f"`{item.collector}` has no option {opt.name!r}", opt.span,
+                                 expected="one of " + (", ".join(spec.get("options", {})) or "no options"),
+                                 hint=suggest(opt.name, spec.get("options", {})))
+                if spec.get("needs_recording") and not all(m in recorded for m in patches[block.cell].members):
+                    out.fail(f"`{item.collector}` reads every cell of the patch {block.cell!r}, which is not recorded",
+                             item.span, hint=f"add `record {block.cell}: current clamp`")
+            continue
         if on_network and p.network is None:
             out.fail("`measure network:` needs an embedded network", block.span,
                      expected="a `network:` block giving the simulated region",
@@ -120,6 +133,11 @@ def check_measures(p: ast.Protocol, circuit, out: Collector) -> None:
                          hint=suggest(item.collector, COLLECTORS))
                 continue
             scope = spec.get("scope", "cell")
+            if scope == "patch":
+                out.fail(f"`{item.collector}` reads a multi-cell patch, and {block.cell!r} is not one", item.span,
+                         expected="`measure PATCH:` with PATCH selected as `PATCH is N of CLASS within R`",
+                         hint="select the cells as a patch in `cells:`")
+                continue
             if on_network != (scope == "network"):
                 fitting = sorted(k for k, v in COLLECTORS.items() if (v.get("scope", "cell") == "network") == on_network)
                 where = "the network" if on_network else f"cell {block.cell!r}"
@@ -318,6 +336,10 @@ def run_checks(protocol: ast.Protocol, circuit) -> Collector:
     Returns:
         The collector (its warnings are for the caller to show).
     """
+    from ..language.patch import expand_patches
+    from ..measure.registry import patch_collectors
+
+    protocol = expand_patches(protocol, patch_collectors())
     out = Collector()
     for check in CHECKS:
         check(protocol, circuit, out)

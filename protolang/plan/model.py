@@ -146,6 +146,20 @@ class SynapsePlan:
     delay: np.ndarray                  # (n_repeat,) s, latency + distance / velocity
     receptors: dict[str, float]        # receptor -> relative peak conductance (AMPA 1.0, NMDA 0.4)
     stochastic: bool = True
+    distance: np.ndarray | None = None           # (n_repeat,) m, soma to soma
+    rule_probability: np.ndarray | None = None   # (n_repeat,) the circuit rule's p at that distance
+
+
+@dataclass
+class PatchPlan:
+    """A multi-cell patch: its cells (roles, in order), and how far apart their turns are."""
+
+    name: str
+    cell_class: str
+    members: list[str]
+    radius: float                      # m
+    turn: float                        # s between the turns of consecutive cells (0: never stimulated)
+    pathway: str | None                # the circuit pathway between its cells, if any
 
 
 @dataclass
@@ -322,6 +336,7 @@ class Plan:
     notes: list[str] = field(default_factory=list)
     lesions: list[LesionRecord] = field(default_factory=list)
     network: NetworkPlan | None = None
+    patches: list[PatchPlan] = field(default_factory=list)
 
     def role(self, name: str) -> RolePlan:
         for r in self.roles:

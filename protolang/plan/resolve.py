@@ -21,9 +21,10 @@ from ..language.errors import Collector, ProtocolError, error
 from ..language.units import display, expect
 from ..engine.models import (HH_MODELS, membrane_area, hh_slow_time_constants, holdable_limit, holding_is_stable,
                              peak_factor, rate_factor_name, steady_state_current)
-from ..measure.registry import COLLECTORS
+from ..language.patch import expand_patches
+from ..measure.registry import COLLECTORS, patch_collectors
 from .check import find_pathway, run_checks
-from .model import (ActivationPlan, CurrentPulse, MeasurePlan, NoiseSpec, Plan, PoissonSpec, ReceptorPlan,
+from .model import (ActivationPlan, CurrentPulse, MeasurePlan, NoiseSpec, PatchPlan, Plan, PoissonSpec, ReceptorPlan,
                     RolePlan, StimulusEvent, SynapsePlan, WaveSegment)
 from .lesions import check_pools, repeat_lesions, whole_circuit_lesions
 from .network import background_plans, resolve_network, role_background
@@ -303,6 +304,8 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
     """
     from ..circuit import instantiate
 
+    original_stimuli = protocol.stimuli
+    protocol = expand_patches(protocol, patch_collectors())
     warnings = run_checks(protocol, circuit)
     if instance is None:
         instance = instantiate(circuit, protocol.seed)
@@ -443,6 +446,8 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
                 D=np.where(connected, cp["D"], 1.0), F=np.where(connected, cp["F"], 0.0),
                 delay=np.where(connected, cp["delay"], 0.0), receptors=dict(pw.receptors),
                 stochastic=not settings["deterministic"]))
+            synapses[-1].distance = np.linalg.norm(instance.positions[pre_ids] - instance.positions[post_ids], axis=1)
+            synapses[-1].rule_probability = np.asarray(pw.probability(synapses[-1].distance), dtype=float)
             span = next((c.span for c in picks[post].constraints
                          if isinstance(c, ast.ReceivingFrom) and c.source == pre), picks[post].span)
             spans[f"syn_{pre}_to_{post}"] = str(span)
@@ -483,6 +488,13 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
                                   memory_limit=settings["memory"], memory_span=settings["memory_span"])
         for role in roles:
             role.silenced = role.silenced and role.spike_times is None
+    patches = []
+    for patch in protocol.cells.patches:
+        block = next((b for b in original_stimuli if b.cell == patch.name), None)
+        pw = find_pathway(circuit, patch.cell_class, patch.cell_class)
+        patches.append(PatchPlan(name=patch.name, cell_class=patch.cell_class, members=list(patch.members),
+                                 radius=patch.radius.si, turn=block.turn.si if block is not None else 0.0,
+                                 pathway=pw.name if pw is not None else None))
     layout, reason = _layout(settings, interval, length, roles, receptors, synapses)
     text_hash = hashlib.sha256((source_text or "").encode()).hexdigest() if source_text else ""
     notes = [f"{d.span}: warning: {d.message}" for d in out.warnings] + notes_extra
@@ -493,7 +505,7 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
         n_sweeps=sw.count, interval=interval, n_repeat=n_repeat, layout=layout, layout_reason=reason,
         mode=settings["mode"], conditions=cond, roles=roles, receptors=receptors, synapses=synapses,
         measures=measures, spans=spans, notes=notes, activations=activations,
-        lesions=lesions.records, network=network)
+        lesions=lesions.records, network=network, patches=patches)
 
 
 def _layout(settings, interval, length, roles, receptors, synapses) -> tuple[str, str]:
