@@ -28,7 +28,7 @@ cells:
     patch is {{n}} of pyramidal_deep within 100 um
     repeat {{repeat}}
 
-sweeps {{sweeps}} every 5 s, lasting {{length}}
+sweeps {{sweeps}} every 8 s, lasting {{length}}
 
 record patch: current clamp, holding -70 mV, noise 0.05 mV
 
@@ -120,7 +120,6 @@ def test_sampled_probability_agrees_with_the_rule():
 
 
 @pytest.mark.brian2
-@pytest.mark.slow
 def test_detected_connections_match_the_circuit(tmp_path):
     # The lab's criterion applied to simulated recordings finds the circuit's connections:
     # every connected pair of these patches (EPSPs 0.3-2 mV against 0.05 mV recording noise

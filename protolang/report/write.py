@@ -179,6 +179,8 @@ def write_figures(fig_dir: str | os.PathLike, plan: "Plan", recordings: "Recordi
     written: dict[str, Path] = {}
     if recordings.population and "populations" in tables:
         written.update(_network_figures(Path(fig_dir), recordings, tables))
+    if "patch_connectivity" in tables and len(tables["patch_connectivity"]):
+        written.update(_patch_figures(Path(fig_dir), tables["patch_connectivity"]))
     if "connections" not in tables or "responses" not in tables or tables["connections"].empty:
         return written
     fig_dir = Path(fig_dir)
@@ -218,6 +220,37 @@ def _network_figures(fig_dir: Path, recordings: "Recordings", tables: dict) -> d
     return {"network_raster.png": raster_figure(fig_dir / "network_raster.png", times, cells, classes, start, stop),
             "network_rate.png": population_rate_figure(fig_dir / "network_rate.png", times, cells, classes,
                                                        start, stop, bursts=bursts)}
+
+
+def _patch_figures(fig_dir: Path, table: "pd.DataFrame") -> dict[str, Path]:
+    """Connection probability against distance per patch: sampled with its Wilson interval,
+    the circuit rule's probability and the circuit's own fraction of the same pairs."""
+    fig_dir.mkdir(parents=True, exist_ok=True)
+    written = {}
+    for patch, part in table.groupby("patch", sort=False):
+        bins = part[(part["scope"] == "bin") & (part["pairs_tested"] > 0)]
+        if bins.empty:
+            continue
+        mid = 0.5 * (bins["distance_from_um"] + bins["distance_to_um"])
+        fig = _new_figure(6.0, 4.0)
+        ax = fig.add_subplot()
+        p = bins["probability"].to_numpy(dtype=float)
+        err = np.vstack([p - bins["ci_low"].to_numpy(dtype=float), bins["ci_high"].to_numpy(dtype=float) - p])
+        ax.errorbar(mid, p, yerr=err, marker="o", capsize=3, label="sampled (Wilson 95 %)")
+        if "rule_probability" in bins:
+            ax.plot(mid, bins["rule_probability"], "s--", label="circuit rule")
+        if "circuit_probability" in bins:
+            ax.plot(mid, bins["circuit_probability"], "^:", label="circuit, same pairs")
+        for x, n in zip(mid, bins["pairs_tested"]):
+            ax.annotate(f"n={int(n)}", (x, 0), textcoords="offset points", xytext=(0, 3), ha="center", fontsize=7)
+        ax.set_xlabel("intersomatic distance (um)")
+        ax.set_ylabel("connection probability")
+        ax.set_ylim(bottom=0)
+        ax.set_title(f"multi-cell patch {patch!r}: connections found by spike-triggered averages", fontsize=9)
+        ax.legend(fontsize=7)
+        name = f"patch_{slug(str(patch))}_probability.png"
+        written[name] = _save_figure(fig, fig_dir / name)
+    return written
 
 
 # Unit of the amplitude columns -> (SI trace to that unit, what the trace is).
