@@ -1202,7 +1202,10 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: b
         params = adex_params[role.name] if role.name in adex_params else hh_params[role.name]
         specs[role.name] = _membrane_spec(b2, plan, role, index, layout, stim, receptors_on[role.name],
                                           suffix_of, release_on[role.name], params, mg_needed, notes)
-    grouping = cell_groups(plan, specs, names, merge)
+    guests = _population_guests(plan, specs, merge)
+    if plan.network is not None:
+        objects += _population(b2, plan, built, specs, guests, receptors_on, suffix_of, say)
+    grouping = [(g, members) for g, members in cell_groups(plan, specs, names, merge) if members[0] not in guests]
     say(f"building {len(grouping)} cell group(s) for {len(plan.roles)} role(s), {n} cell(s) each "
         f"({layout.kind} layout)")
     for gname, members in grouping:
@@ -1267,14 +1270,24 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: b
                              f"it is left out of the network")
                 built.input_monitors[key] = (None, np.zeros(0, dtype=np.int64))
                 continue
+            rec = plan.receptors[spec.receptor]
+            jump = spec.conductance * models.peak_factor(rec.rise, rec.decay)
+            if spec.background and role.name in guests:
+                continue    # the population's own background input reaches the guest's cells
+            if spec.background:
+                # ongoing drive of an embedded network: always on, events not recorded, so the
+                # binomial PoissonInput does it with one code object instead of three
+                block = built.blocks[role.name]
+                objects.append(b2.PoissonInput(built.cells[role.name][block.start:block.stop],
+                                               f"x_{suffix_of[spec.receptor]}", N=1, rate=spec.rate * b2.Hz,
+                                               weight=jump * b2.siemens / b2.second))
+                continue
             ts = layout.sweep_time
             source = b2.PoissonGroup(
                 n, rates=f"poisson_rate*int({ts} >= poisson_start and {ts} < poisson_stop)",
                 namespace={"poisson_rate": spec.rate * b2.Hz, "poisson_start": spec.start * b2.second,
                            "poisson_stop": spec.stop * b2.second, "sweep_interval": layout.interval * b2.second},
                 name=f"{name}_poisson{k}")
-            rec = plan.receptors[spec.receptor]
-            jump = spec.conductance * models.peak_factor(rec.rise, rec.decay)
             link = b2.Synapses(source, built.cells[role.name],
                                on_pre=f"x_{suffix_of[spec.receptor]}_post += poisson_jump",
                                namespace={"poisson_jump": jump * b2.siemens / b2.second},
@@ -1316,24 +1329,67 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: b
         built.input_monitors[act.name] = (mon, gen_target)
 
     if plan.network is not None:
-        objects += _embedded_network(b2, plan, built, suffix_of, say)
+        objects += _network_connections(b2, plan, built, suffix_of)
     objects += _monitors(b2, plan, built, membranes)
     built.network = b2.Network(*objects, name="protolang_network")
     return built
 
 
-def _embedded_network(b2: Any, plan: Plan, built: Built, suffix_of: dict[str, str],
-                      say: Callable[[str], None]) -> list[Any]:
-    """The population of an embedded run, its background drive, its connections and its spike monitor."""
-    from .network import POPULATION_NAME, build_population, edge_values
+def _population_guests(plan: Plan, specs: dict[str, CellSpec], merge: bool) -> list[str]:
+    """Selected cells of an embedded run that can live in the population's group: free AdEx cells
+    (current clamp or unrecorded, no waveform, no noise or Poisson input but the background, no
+    release accumulators). Their connections then share the population's Synapses objects."""
+    if plan.network is None or not merge:
+        return []
+    out = []
+    for role in plan.roles:
+        spec = specs.get(role.name)
+        if spec is None or spec.kind != "adex" or role.mode == "voltage clamp" or spec.release_vars:
+            continue
+        if role.pulses or role.segments or role.amplitude_scale is not None or "I_exp" in spec.per_cell:
+            continue
+        if not all(x.background for x in role.noise) or not all(x.background for x in role.poisson):
+            continue
+        out.append(role.name)
+    return out
+
+
+def _population(b2: Any, plan: Plan, built: Built, specs: dict[str, CellSpec], guests: list[str],
+                receptors_on: dict[str, list[str]], suffix_of: dict[str, str],
+                say: Callable[[str], None]) -> list[Any]:
+    """The embedded network's population group (with its guest roles after its own cells), its
+    background input and its spike monitor."""
+    from .network import POPULATION_NAME, build_population
 
     net = plan.network
     if built.layout.kind != "sequential":
         raise AssertionError("internal error: an embedded network in the replicas layout")
-    say(f"building the embedded network: {net.population.size} cells, {len(net.edges)} connection set(s)")
-    group, objects = build_population(b2, plan, suffix_of, built.layout.dt)
+    say(f"building the embedded network: {net.population.size} cells, {len(net.edges)} connection set(s), "
+        f"{len(guests)} selected cell role(s) inside it")
+    roles = {r.name: r for r in plan.roles}
+    group, objects = build_population(
+        b2, plan, suffix_of, built.layout.dt,
+        [(specs[r].per_cell, roles[r].cell_class, roles[r].silenced, receptors_on[r]) for r in guests])
     objects.append(group)
     built.population = group
+    n, start = built.layout.n_cells, net.population.size
+    if guests:
+        built.groups[group.name] = list(guests)
+    for k, r in enumerate(guests):
+        built.blocks[r] = RoleBlock(group.name, start + k * n, n)
+        built.cells[r] = group
+    built.population_spikes = b2.SpikeMonitor(group, name=f"spikes_{POPULATION_NAME}")
+    objects.append(built.population_spikes)
+    return objects
+
+
+def _network_connections(b2: Any, plan: Plan, built: Built, suffix_of: dict[str, str]) -> list[Any]:
+    """The embedded network's connections: one Synapses object per pair of Brian2 groups, its
+    receptor sets sharing it (each connection's weight of a receptor its pathway lacks is 0: a
+    few additions per event instead of one more object's overhead every step)."""
+    from .network import POPULATION_NAME, edge_values
+
+    group = built.population
 
     def endpoint(name: str, index: np.ndarray) -> tuple[Any, np.ndarray]:
         if name == POPULATION_NAME:
@@ -1341,16 +1397,27 @@ def _embedded_network(b2: Any, plan: Plan, built: Built, suffix_of: dict[str, st
         # a role's cell k of the sequential layout is its repeat k
         return built.cells[name], built.blocks[name].cells(index)
 
-    for edge in net.edges:
-        source, pre = endpoint(edge.pre, edge.pre_index)
-        target, post = endpoint(edge.post, edge.post_index)
-        arrays = _tm_arrays(plan, pre, post, np.arange(edge.size), edge_values(edge), edge.weights,
-                            edge.stochastic, suffix_of)
-        built.n_synapses[f"network:{edge.name}"] = arrays.size
-        if arrays.size:
-            objects.append(_tm_object(b2, f"net_{edge.name}", source, target, arrays))
-    built.population_spikes = b2.SpikeMonitor(group, name=f"spikes_{POPULATION_NAME}")
-    objects.append(built.population_spikes)
+    pairs: dict[tuple[str, str, bool], list] = {}
+    for edge in plan.network.edges:
+        source, _ = endpoint(edge.pre, edge.pre_index[:0])
+        target, _ = endpoint(edge.post, edge.post_index[:0])
+        pairs.setdefault((source.name, target.name, edge.stochastic), []).append(edge)
+    objects = []
+    for (source_name, target_name, stochastic), edges in pairs.items():
+        receptors = [r for r in plan.receptors if any(r in e.weights for e in edges)]
+        parts = []
+        for edge in edges:
+            source, pre = endpoint(edge.pre, edge.pre_index)
+            target, post = endpoint(edge.post, edge.post_index)
+            weights = {r: edge.weights.get(r, np.zeros(edge.size)) for r in receptors}
+            arrays = _tm_arrays(plan, pre, post, np.arange(edge.size), edge_values(edge), weights,
+                                stochastic, suffix_of)
+            built.n_synapses[f"network:{edge.name}"] = arrays.size
+            if arrays.size:
+                parts.append(arrays)
+        if parts:
+            objects.append(_tm_object(b2, f"net_{source_name}_to_{target_name}", source, target,
+                                      SynapseArrays.concat(parts)))
     return objects
 
 
@@ -1372,7 +1439,8 @@ def _monitors(b2: Any, plan: Plan, built: Built, membranes: list[str]) -> list[A
                 raise AssertionError(f"internal error: group {gname!r} mixes clamped and unclamped roles")
             var = variables.pop()
             cells = np.concatenate([built.blocks[r].cells() for r in recorded])
-            mon = b2.StateMonitor(group, var, record=True if len(recorded) == len(members) else cells,
+            whole = len(recorded) == len(members) and group is not built.population
+            mon = b2.StateMonitor(group, var, record=True if whole else cells,
                                   dt=layout.sample_dt * b2.second, name=f"trace_{ident}")
             out.append(mon)
             for k, r in enumerate(recorded):
@@ -1380,8 +1448,11 @@ def _monitors(b2: Any, plan: Plan, built: Built, membranes: list[str]) -> list[A
                 built.trace_rows[r] = slice(k * layout.n_cells, (k + 1) * layout.n_cells)
                 built.trace_variables[r] = var
                 built.trace_units[r] = "A" if var == "I_clamp" else "V"
-        spikes = b2.SpikeMonitor(group, name=f"spikes_{ident}")
-        out.append(spikes)
+        if group is built.population:
+            spikes = built.population_spikes      # guests of the population share its monitor
+        else:
+            spikes = b2.SpikeMonitor(group, name=f"spikes_{ident}")
+            out.append(spikes)
         for r in members:
             built.spike_monitors[r] = spikes
     return out

@@ -45,26 +45,36 @@ def _receptors_on_population(plan: Plan) -> list[str]:
     return [r for r in plan.receptors if r in needed]
 
 
-def _class_mask(net: NetworkPlan, classes: list[str]) -> np.ndarray:
+def _class_mask(net: NetworkPlan, classes: list[str], class_index: np.ndarray) -> np.ndarray:
     wanted = [net.population.class_names.index(c) for c in classes if c in net.population.class_names]
-    return np.isin(net.population.class_index, wanted)
+    return np.isin(class_index, wanted)
 
 
-def build_population(b2: Any, plan: Plan, suffix_of: dict[str, str], dt: float) -> tuple[Any, list[Any]]:
+def build_population(b2: Any, plan: Plan, suffix_of: dict[str, str], dt: float,
+                     guests: list[tuple[dict[str, np.ndarray], str, bool, list[str]]] = ()) -> tuple[Any, list[Any]]:
     """The population NeuronGroup and its Poisson background inputs.
+
+    Args:
+        guests: selected cells that live in the population's group after its own cells, as
+            (per-cell starting values and parameters of the role, its class, silenced, the
+            receptors its own synapses use), one entry per role, in block order.
 
     Returns:
         (group, extra objects to add to the network).
     """
     net = plan.network
     pop = net.population
-    n = pop.size
-    rnames = _receptors_on_population(plan)
+    extra_receptors = {r for _, _, _, recs in guests for r in recs}
+    rnames = [r for r in plan.receptors if r in set(_receptors_on_population(plan)) | extra_receptors]
+    class_index = np.concatenate([pop.class_index] + [np.full(values["v"].size, pop.class_names.index(cls))
+                                                      for values, cls, _, _ in guests])
+    silenced = np.concatenate([pop.silenced] + [np.full(values["v"].size, gone) for values, _, gone, _ in guests])
+    n = class_index.size
     terms = [models.ReceptorTerm(suffix_of[r], plan.receptors[r].mg_block) for r in rnames]
     noise_lines = [bg for bg in net.background if bg.kind == "noise"]
     bg_terms = tuple(models.NoiseTerm(k, bg.reversal is not None) for k, bg in enumerate(noise_lines))
     inputs = models.CellInputs(background=bg_terms)
-    gated = bool(pop.silenced.any())
+    gated = bool(silenced.any())
     eqs = models.adex_equations(terms, inputs, [], gated=gated)
     poisson_lines = [bg for bg in net.background if bg.kind == "poisson"]
     # per-cell jump of each Poisson background line (zero for cells it does not reach)
@@ -84,17 +94,18 @@ def build_population(b2: Any, plan: Plan, suffix_of: dict[str, str], dt: float) 
     group = b2.NeuronGroup(n, eqs, threshold=threshold, reset="v = Vr\nw += b", refractory="t_ref",
                            method="euler", namespace=namespace, name=f"cells_{POPULATION_NAME}")
     params = pop.params
-    for key in models.ADEX_PARAMS:
-        setattr(group, key + "_", np.asarray(params[key], dtype=float))
-    # start at rest (no holding current), adaptation at its steady state
-    v0, _ = models.adex_rest(params, np.zeros(n))
-    group.v_ = v0
-    group.w_ = params["a"] * (v0 - params["EL"])
+    # the population starts at rest (no holding current), adaptation at its steady state; a
+    # guest role brings its own values (at rest under its holding current)
+    v0, _ = models.adex_rest(params, np.zeros(pop.size))
+    own = {key: np.asarray(params[key], dtype=float) for key in models.ADEX_PARAMS}
+    own.update(v=v0, w=params["a"] * (v0 - params["EL"]), I_hold=np.zeros(pop.size))
+    for key, values in own.items():
+        setattr(group, key + "_", np.concatenate([values] + [np.asarray(g[0][key], dtype=float) for g in guests]))
     if gated:
-        group.spike_gate_ = np.where(pop.silenced, 0.0, 1.0)
+        group.spike_gate_ = np.where(silenced, 0.0, 1.0)
     rng = np.random.default_rng([int(plan.seed), _BACKGROUND_STREAM])
     for term, bg in zip(bg_terms, noise_lines):
-        on = _class_mask(net, bg.classes)
+        on = _class_mask(net, bg.classes, class_index)
         kick = bg.sd * math.sqrt(-math.expm1(-2.0 * dt / bg.tau))
         setattr(group, f"bg_mean_{term.index}_", np.where(on, bg.mean, 0.0))
         setattr(group, f"bg_kick_{term.index}_", np.where(on, kick, 0.0))
@@ -115,7 +126,7 @@ def build_population(b2: Any, plan: Plan, suffix_of: dict[str, str], dt: float) 
         rec = plan.receptors[bg.receptor]
         jump = bg.conductance * models.peak_factor(rec.rise, rec.decay)
         var = f"bg_jump_{k}"
-        setattr(group, var + "_", np.where(_class_mask(net, bg.classes), jump, 0.0))
+        setattr(group, var + "_", np.where(_class_mask(net, bg.classes, class_index), jump, 0.0))
         objects.append(b2.PoissonInput(group, f"x_{suffix_of[bg.receptor]}", N=1, rate=bg.rate * b2.Hz,
                                        weight=var))
     return group, objects

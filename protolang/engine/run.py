@@ -380,8 +380,10 @@ def _collect(plan: Plan, built: Built, raw_traces: dict[str, np.ndarray],
     population: dict = {}
     if built.population_spikes is not None:
         pop = plan.network.population
-        population = {"times": np.asarray(built.population_spikes.t_[:], dtype=float),
-                      "cells": np.asarray(built.population_spikes.i[:], dtype=np.int64),
+        cells = np.asarray(built.population_spikes.i[:], dtype=np.int64)
+        own = cells < pop.size      # selected cells inside the population's group come after its own
+        population = {"times": np.asarray(built.population_spikes.t_[:], dtype=float)[own],
+                      "cells": cells[own],
                       "class_names": list(pop.class_names), "class_index": np.asarray(pop.class_index),
                       "repeat": np.asarray(pop.repeat), "cell_ids": np.asarray(pop.cell_ids),
                       "interval": float(layout.interval), "sweep_length": float(layout.sweep_length)}

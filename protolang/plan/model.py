@@ -71,6 +71,8 @@ class NoiseSpec:
     start: float
     stop: float
     reversal: float | None = None
+    # the ongoing drive of an embedded network (the same as its class's cells get)
+    background: bool = False
 
 
 @dataclass
@@ -82,6 +84,8 @@ class PoissonSpec:
     receptor: str
     start: float
     stop: float
+    # the ongoing drive of an embedded network: on for the whole run, its events not recorded
+    background: bool = False
 
 
 @dataclass

@@ -19,13 +19,15 @@ from ..language.errors import error
 from ..language.format import place_text
 from .model import BackgroundPlan, EdgeSet, NetworkPlan, NoiseSpec, PoissonSpec, PopulationPlan
 
-# Bytes per simulated object, measured on Brian2 2.9 with the numpy and Cython targets
-# (bench/embedded_network.py prints the measured peak next to this estimate): one release
-# site (a Brian2 synapse with its Tsodyks-Markram state, indices and queue share), one cell
-# (state, parameters, conductances), plus the interpreter and Brian2 themselves.
-BYTES_PER_SITE = 400.0
-BYTES_PER_CELL = 4000.0
-BYTES_BASE = 400e6
+# Bytes per simulated object: one release site (a Brian2 synapse with its Tsodyks-Markram
+# state, indices and queue share), one cell (state, parameters, conductances), plus the
+# interpreter and Brian2 themselves. bench/embedded_network.py measured 166-173 B per site and
+# a 264-267 MB base (cython target, peak RSS over three network sizes, least squares); these
+# are those figures with about 15 % margin; the per-cell share was too small to resolve and is
+# counted from the per-cell arrays (about 0.5 kB) with margin.
+BYTES_PER_SITE = 200.0
+BYTES_PER_CELL = 1000.0
+BYTES_BASE = 300e6
 # Spikes kept by the monitor: at most this rate over the whole run (16 bytes per spike).
 MONITOR_RATE_BOUND = 50.0
 DEFAULT_MEMORY_FRACTION = 0.8
@@ -215,10 +217,10 @@ def role_background(background: list[BackgroundPlan], cell_class: str, interval:
             continue
         if bg.kind == "noise":
             noise.append(NoiseSpec(mean=bg.mean, sd=bg.sd, tau=bg.tau, start=0.0, stop=interval,
-                                   reversal=bg.reversal))
+                                   reversal=bg.reversal, background=True))
         else:
             poisson.append(PoissonSpec(rate=bg.rate, conductance=bg.conductance, receptor=bg.receptor,
-                                       start=0.0, stop=interval))
+                                       start=0.0, stop=interval, background=True))
     return noise, poisson
 
 
