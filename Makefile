@@ -24,6 +24,7 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(PY) bench/paired_train.py
 	$(PY) bench/characterise.py
+	$(PY) bench/embedded_network.py
 
 clean:
 	rm -rf $(VENV) .cache runs
