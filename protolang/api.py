@@ -261,6 +261,11 @@ def provenance(exp: Experiment, plan, recordings, timings: dict) -> dict:
         "plan_sha256": hashlib.sha256(plan_json.encode()).hexdigest(),
         "seed": plan.seed,
         "layout": plan.layout,
+        # what the lesions removed (counts; the exact cell ids are in plan.json)
+        "lesions": [{"line": l.text, "kind": l.kind, "cells_per_class": dict(l.cells),
+                     "connections_per_pathway": dict(l.connections), "factor": l.factor,
+                     "summed_over_repeats": l.per_repeat} for l in plan.lesions],
+        "network": plan.network.to_plain() if plan.network is not None else None,
         "engine": {k: v for k, v in recordings.meta.items() if isinstance(v, (str, int, float, bool, type(None)))},
         "versions": _versions(),
         "platform": {"system": platform.system(), "machine": platform.machine(),

@@ -81,6 +81,10 @@ def test_removed_class_has_no_cells_no_synapses_no_spikes(tmp_path, intact):
     for edge in plan.network.edges:
         assert not any("basket_fast" in plan.network.pathways[k] for k in np.unique(edge.pathway))
     assert plan.lesions[0].cells == {"basket_fast": 220}
+    # the run's provenance lists it too
+    lesion = result.provenance["lesions"][0]
+    assert lesion["line"] == "remove basket_fast" and lesion["cells_per_class"] == {"basket_fast": 220}
+    assert result.provenance["network"]["cells"] == plan.network.population.size
 
 
 def test_silenced_class_stays_but_never_fires(tmp_path):
