@@ -48,8 +48,8 @@ def _truth(plan: "Plan", pre: str, post: str) -> tuple[np.ndarray, np.ndarray]:
         # no pathway between the classes, or every receptor blocked: the circuit connects nothing
         zeros = np.zeros(plan.n_repeat)
         return zeros.astype(bool), zeros
-    cut = any(l.kind == "cut" and syn.pathway in l.connections for l in plan.lesions)
-    connected = np.asarray(syn.connected, dtype=bool) if not cut else np.zeros(plan.n_repeat, dtype=bool)
+    # a cut pathway's synapse plan is already unconnected: the truth is the lesioned circuit's
+    connected = np.asarray(syn.connected, dtype=bool)
     rule = syn.rule_probability if syn.rule_probability is not None else np.full(plan.n_repeat, np.nan)
     return connected, np.asarray(rule, dtype=float)
 

@@ -438,6 +438,7 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
                 connected = np.zeros_like(connected)
             cp["site_conductance"] = cp["site_conductance"] * lesions.conductance_factor(pw.name)
             U_ref = np.where(connected, cp["U"], 0.0)
+            distance = np.linalg.norm(instance.positions[pre_ids] - instance.positions[post_ids], axis=1)
             synapses.append(SynapsePlan(
                 name=f"{pre}_to_{post}", pre=pre, post=post, pathway=pw.name, connected=connected,
                 n_sites=np.where(connected, cp["n_sites"], 0).astype(int),
@@ -445,9 +446,8 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
                 U=np.clip(U_ref * cond["release_factor"], 0.0, 1.0), U_reference=U_ref,
                 D=np.where(connected, cp["D"], 1.0), F=np.where(connected, cp["F"], 0.0),
                 delay=np.where(connected, cp["delay"], 0.0), receptors=dict(pw.receptors),
-                stochastic=not settings["deterministic"]))
-            synapses[-1].distance = np.linalg.norm(instance.positions[pre_ids] - instance.positions[post_ids], axis=1)
-            synapses[-1].rule_probability = np.asarray(pw.probability(synapses[-1].distance), dtype=float)
+                stochastic=not settings["deterministic"], distance=distance,
+                rule_probability=np.asarray(pw.probability(distance), dtype=float)))
             span = next((c.span for c in picks[post].constraints
                          if isinstance(c, ast.ReceivingFrom) and c.source == pre), picks[post].span)
             spans[f"syn_{pre}_to_{post}"] = str(span)
