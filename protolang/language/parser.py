@@ -587,6 +587,7 @@ _MEASURE_OPTIONS = {
     "discard": ("time", 0.0, True),
     "distance_bin": ("length", 0.0, False),
     "detection_factor": ("number", 0.0, False),
+    "bootstrap": ("number", 0.0, True),
 }
 # Most cells a multi-cell patch holds (rigs hold up to about a dozen pipettes).
 MAX_PATCH_CELLS = 12

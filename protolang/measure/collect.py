@@ -155,6 +155,11 @@ def collect(plan: "Plan", recordings: "Recordings",
         elif measure.collector == "spikes":
             _options(measure)
             parts.setdefault("spikes", []).append(collect_spikes(plan, recordings, measure))
+        elif measure.collector == "plasticity":
+            from .plasticity import collect_plasticity
+
+            _options(measure)
+            parts.setdefault("plasticity", []).append(collect_plasticity(plan, recordings, measure))
         elif measure.collector == "connectivity":
             from .patch import collect_connectivity
 

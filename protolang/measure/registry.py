@@ -34,6 +34,17 @@ COLLECTORS: dict[str, dict] = {
         "description": "postsynaptic responses to the spikes of SOURCE: per response, per connection, per "
                        "pathway (potentials in current clamp, clamp currents in voltage clamp)",
     },
+    "plasticity": {
+        "needs_source": True,
+        "options": {
+            # resamples of the sweeps behind the confidence intervals of U, D and F
+            "bootstrap": ("number", 200.0),
+        },
+        "tables": ["plasticity"],
+        "description": "Tsodyks-Markram U, D, F and absolute efficacy fitted to the mean response to every "
+                       "presynaptic spike of a train (and recovery probe) by least squares, per connection "
+                       "and per pathway, with bootstrap intervals over sweeps and a synapse-class label",
+    },
     "spikes": {
         "needs_source": False,
         "options": {},

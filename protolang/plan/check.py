@@ -316,6 +316,41 @@ def check_network(p: ast.Protocol, circuit, out: Collector) -> None:
             break
 
 
+# fewest presynaptic spikes a Tsodyks-Markram fit can use (three parameters besides the efficacy)
+MIN_FIT_SPIKES = 3
+
+
+def _presynaptic_events(p: ast.Protocol, cell: str) -> int | None:
+    """Presynaptic spikes a cell's stimuli ask for (pulses, train pulses, explicit times); None if unknown."""
+    count = 0
+    for block in p.stimuli:
+        if block.cell != cell:
+            continue
+        for item in block.items:
+            if isinstance(item, ast.Pulse):
+                count += 1
+            elif isinstance(item, ast.Train):
+                count += item.count
+            elif isinstance(item, ast.SpikeTimes):
+                count += len(item.times)
+    return count
+
+
+def check_fits(p: ast.Protocol, circuit, out: Collector) -> None:
+    """A plasticity fit needs a train: at least 3 presynaptic spikes per sweep."""
+    for block in p.measures:
+        for item in block.items:
+            if item.collector != "plasticity" or item.source is None:
+                continue
+            n = _presynaptic_events(p, item.source)
+            if n is not None and n < MIN_FIT_SPIKES:
+                out.fail(f"a Tsodyks-Markram fit needs at least {MIN_FIT_SPIKES} presynaptic spikes per sweep, "
+                         f"and {item.source!r} fires {n}", item.span,
+                         expected=f"a train of {MIN_FIT_SPIKES} or more pulses on {item.source!r}",
+                         hint=f"e.g. `train 8 pulses of 1.5 nA for 2 ms at 20 Hz from 100 ms` and a recovery "
+                              f"`pulse` after it in `stimulate {item.source}:`")
+
+
 CHECKS = (
     check_classes,
     check_connectivity_constraints,
@@ -327,6 +362,7 @@ CHECKS = (
     check_cell_collectors,
     check_lesions,
     check_network,
+    check_fits,
 )
 
 
