@@ -205,3 +205,10 @@ def test_simulate_embedded_needs_a_network_block(tmp_path):
 def test_discarding_the_whole_sweep_is_an_error(tmp_path):
     text = errors_of(tmp_path, NET.format(radius=150, memory="") + "measure network:\n    activity, discard 2 s\n")
     assert "leaves nothing of a 402 ms sweep" in text and ":21:15:" in text
+
+
+def test_background_errors_point_at_the_word(tmp_path):
+    text = errors_of(tmp_path, NET.format(radius=150, memory="").replace(
+        "0.2 nS AMPA onto pyramidal_deep", "0.2 nS AMPX onto pyramidal_deep, basket_fats"))
+    assert "unknown receptor 'AMPX'" in text and "unknown cell class 'basket_fats'" in text
+    assert "p.protocol:18:40:" in text and "p.protocol:18:66:" in text

@@ -163,6 +163,8 @@ class Background:
     tau: Quantity | None = None
     reversal: Quantity | None = None
     span: Span | None = _span()
+    class_spans: tuple = field(default=(), compare=False, repr=False)
+    receptor_span: Span | None = _span()
 
 
 @node

@@ -1009,11 +1009,11 @@ class _Lowering(Transformer):
                 node = constraint.node
                 ref = node.of if isinstance(node, ast.Within) else node.source
                 if ref in earlier and isinstance(next(p.node for p in picks if p.node.name == ref), ast.PatchPick):
+                    singles = [n for n in earlier
+                               if not isinstance(next(p.node for p in picks if p.node.name == n), ast.PatchPick)]
                     self.c.fail(f"{ref!r} is a patch of several cells", constraint.name_span,
-                                expected="one selected cell: " + ", ".join(
-                                    n for n in earlier if not isinstance(
-                                        next(p.node for p in picks if p.node.name == n), ast.PatchPick))
-                                or "a single selected cell",
+                                expected=("one selected cell: " + ", ".join(singles)) if singles
+                                else "a single selected cell",
                                 hint=f"name one of its cells, e.g. {ref}_1, by selecting it on its own line")
                     continue
                 if ref in earlier:
@@ -1117,7 +1117,8 @@ class _Lowering(Transformer):
                             minimum=0.0, inclusive=False) is not None and ok
         if not ok:
             return None
-        return dict(kind="poisson", rate=rate, conductance=conductance, receptor=str(receptor))
+        return dict(kind="poisson", rate=rate, conductance=conductance, receptor=str(receptor),
+                    receptor_span=self._tspan(receptor))
 
     def background_noise(self, meta, children):
         mean, sd, tau, reversal = children
@@ -1151,14 +1152,15 @@ class _Lowering(Transformer):
         drive, *classes = children
         if drive is None:
             return None
-        names = []
+        names, spans = [], []
         for tok in classes:
             if str(tok) in names:
                 self.c.fail(f"class {str(tok)!r} is listed twice", self._tspan(tok),
                             expected="each class once", hint="drop the repeat")
                 continue
             names.append(str(tok))
-        return ast.Background(classes=tuple(names), span=self._span(meta), **drive)
+            spans.append(self._tspan(tok))
+        return ast.Background(classes=tuple(names), span=self._span(meta), class_spans=tuple(spans), **drive)
 
     def network(self, meta, children) -> ast.Network:
         regions = tuple(c for c in children if isinstance(c, ast.Region))

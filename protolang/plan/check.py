@@ -301,10 +301,11 @@ def check_network(p: ast.Protocol, circuit, out: Collector) -> None:
             if isinstance(place, ast.InLayer):
                 _layer_ok(place.layer, place.span or region.span, circuit, out)
     for bg in p.network.background:
-        for name in bg.classes:
-            _class_ok(name, bg.span, circuit, out)
+        spans = list(bg.class_spans) + [bg.span] * (len(bg.classes) - len(bg.class_spans))
+        for name, span in zip(bg.classes, spans):
+            _class_ok(name, span, circuit, out)
         if bg.kind == "poisson" and bg.receptor not in circuit.receptors:
-            out.fail(f"unknown receptor {bg.receptor!r}", bg.span,
+            out.fail(f"unknown receptor {bg.receptor!r}", bg.receptor_span or bg.span,
                      expected="a receptor of the circuit: " + ", ".join(sorted(circuit.receptors)),
                      hint=suggest(bg.receptor, circuit.receptors))
     for c in circuit.classes.values():
