@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..language import ast
-from ..language.errors import Collector, ProtocolError, error
+from ..language.errors import Collector, error
 from ..language.units import display, expect
 from ..engine.models import (HH_MODELS, membrane_area, hh_slow_time_constants, holdable_limit, holding_is_stable,
                              peak_factor, rate_factor_name, steady_state_current)
