@@ -1,7 +1,8 @@
 """Command line: a thin layer over the public API (check, parse, plan, run).
 
 User errors print as ``file:line:col: error: ...`` and exit with status 1; there is never a
-traceback for a user's mistake. Unexpected internal failures exit with status 3 and say so.
+traceback for a user's mistake. ``run --require-agreement`` exits with status 2 when a published
+reference does not agree. Unexpected internal failures exit with status 3 and say so.
 """
 
 from __future__ import annotations
@@ -106,6 +107,22 @@ def cmd_run(args) -> int:
     for name, table in result.tables.items():
         progress(f"table {name}: {len(table)} rows")
     print(f"results written to {result.out_dir}")
+    comparison = result.tables.get("comparison")
+    if comparison is None or comparison.empty:
+        if args.require_agreement:
+            _err("--require-agreement: the protocol has no reference blocks, so nothing was compared")
+            return 2
+        return 0
+    failing = 0
+    for _, row in comparison.iterrows():
+        scan = "".join(f" {c[5:]}={row[c]}" for c in comparison.columns if c.startswith("scan_"))
+        what = f"{row['measure']} of {row['cell']}" + (f" from {row['from_cell']}" if row["from_cell"] else "")
+        print(f"reference  {what}{scan}: agreement {row['agreement']} ({row['reason']}; {row['source']})")
+        failing += row["agreement"] != "yes"
+    if failing:
+        print(f"{failing} of {len(comparison)} references do not agree")
+        if args.require_agreement:
+            return 2
     return 0
 
 
@@ -132,6 +149,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="Brian2 code-generation target (auto: cython when a compiler works)")
     p.add_argument("--force", action="store_true", help="replace an existing run folder")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.add_argument("--require-agreement", action="store_true",
+                   help="exit with status 2 when any reference does not agree (or has no model data); "
+                        "the run folder is written either way")
     p.set_defaults(func=cmd_run)
     return ap
 

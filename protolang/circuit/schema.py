@@ -12,6 +12,8 @@ Layout (keys in the order the reader checks them)::
 
     name: slab_demo
     note: free text
+    species: rat                     # optional: what the circuit stands for (compared with the
+    age: P14-P21                     #   conditions of published references); free text
     space:
       x: 400 um                      # slab extent along x and y
       y: 400 um
@@ -417,6 +419,9 @@ class Circuit:
     classes: dict[str, CellClass]
     pathways: dict[str, Pathway]
     spans: dict[str, Span] = field(default_factory=dict, compare=False, repr=False)
+    # what the circuit stands for, compared with the conditions of published references (optional)
+    species: str | None = None
+    age: str | None = None
 
     @property
     def class_names(self) -> list[str]:
@@ -858,13 +863,15 @@ class _Reader:
         if self.c.errors:
             return None
         top = self.mapping(root, "", ("name", "space", "bath", "release_law", "receptors",
-                                      "classes", "pathways"), ("note",), "a circuit mapping")
+                                      "classes", "pathways"), ("note", "species", "age"), "a circuit mapping")
         if top is None:
             return None
         for key, (k, v) in top.items():
             self.record(key, k, v)
         name = self.text(top["name"][1], "name") if "name" in top else None
         note = self.text(top["note"][1], "note") if "note" in top else ""
+        species = self.text(top["species"][1], "species") if "species" in top else None
+        age = self.text(top["age"][1], "age") if "age" in top else None
         space = self.read_space(top["space"][1]) if "space" in top else None
         bath = self.read_bath(top["bath"][1]) if "bath" in top else None
         release = self.read_release_law(top["release_law"][1]) if "release_law" in top else None
@@ -879,7 +886,7 @@ class _Reader:
             return None
         return dict(name=name, note=note, extent=space[0], layers=space[1], bath=bath,
                     release=release, receptors=receptors, classes=classes,
-                    pathways={p.name: p for p in pathways})
+                    pathways={p.name: p for p in pathways}, species=species, age=age)
 
     def read_space(self, node: yaml.Node) -> tuple | None:
         keys = self.mapping(node, "space", ("x", "y", "layers"))

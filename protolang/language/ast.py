@@ -373,6 +373,47 @@ class Measure:
     span: Span | None = _span()
 
 
+# --- references: published values -----------------------------------------------------
+@node
+class ReferenceCondition:
+    """``temperature 32 degC to 34 degC``, ``calcium 2 mM``, ``species rat``, ``age "P14-16"``."""
+    name: str
+    low: Quantity | str            # a quantity for bath conditions, text for species and age
+    high: Quantity | None = None   # the top of a range (numbers only)
+    span: Span | None = _span()
+
+
+@node
+class Reference:
+    """``reference amplitude of post from pre:``: a published value of one measure, its conditions,
+    its source and the rule by which the model agrees with it.
+
+    ``rule`` is "sd" (``tolerance`` = k, a plain number of published SDs), "relative" (``tolerance``
+    in %), "absolute" (``tolerance`` in the measure's unit) or "range" (inside ``low``..``high``).
+    """
+    measure: str
+    cell: str
+    source_cell: str | None
+    value: Quantity | None
+    sd: Quantity | None
+    low: Quantity | None
+    high: Quantity | None
+    n: int | None
+    authors: str
+    year: int
+    journal: str
+    rule: str
+    tolerance: Quantity | None
+    conditions: tuple[ReferenceCondition, ...] = ()
+    accepted: tuple[str, ...] = ()
+    from_memory: bool = False
+    note: str | None = None
+    span: Span | None = _span()
+    measure_span: Span | None = _span()
+    cell_span: Span | None = _span()
+    source_span: Span | None = _span()
+
+
 # --- scans ----------------------------------------------------------------------------
 @node
 class ScanRef:
@@ -418,6 +459,7 @@ class Protocol:
     scans: tuple[Scan, ...] = ()
     lesions: tuple = ()
     network: Network | None = None
+    references: tuple[Reference, ...] = ()
     points: tuple[ScanPoint, ...] = field(default=(), compare=False, repr=False)
     file: str = field(default="<string>", compare=False)
     span: Span | None = _span()

@@ -51,6 +51,8 @@ def format_protocol(p: ast.Protocol) -> str:
     for measure in p.measures:
         sections.append([f"measure {measure.cell}:"]
                         + [INDENT + _measure_item(i) for i in measure.items])
+    for ref in p.references:
+        sections.append(_reference(ref))
     return "\n\n".join("\n".join(lines) for lines in sections) + "\n"
 
 
@@ -235,6 +237,50 @@ def _stimulus(item) -> str:
 
 def _window(item) -> str:
     return f" from {_quantity(item.start)} to {_quantity(item.stop)}"
+
+
+def _reference(ref: ast.Reference) -> list[str]:
+    head = f"reference {ref.measure} of {ref.cell}" + (f" from {ref.source_cell}" if ref.source_cell else "") + ":"
+    lines = [head]
+    fields = ([f"sd {_quantity(ref.sd)}"] if ref.sd is not None else []) + ([f"n {ref.n}"] if ref.n is not None else [])
+    if ref.value is not None:
+        lines.append(", ".join([f"value {_quantity(ref.value)}", *fields]))
+        fields = []
+    if ref.low is not None:
+        lines.append(", ".join([f"range {_quantity(ref.low)} to {_quantity(ref.high)}", *fields]))
+    lines.append(f"source {_string(ref.authors)} {ref.year} {_string(ref.journal)}")
+    for c in ref.conditions:
+        if isinstance(c.low, str):
+            lines.append(f"{c.name} {_word(c.low)}")
+        else:
+            lines.append(f"{c.name} {_quantity(c.low)}" + (f" to {_quantity(c.high)}" if c.high is not None else ""))
+    lines.append(reference_rule_text(ref))
+    if ref.accepted:
+        lines.append("accept different " + ", ".join(ref.accepted))
+    if ref.from_memory:
+        lines.append("from memory")
+    if ref.note is not None:
+        lines.append(f"note {_string(ref.note)}")
+    return [lines[0]] + [INDENT + line for line in lines[1:]]
+
+
+def reference_rule_text(ref: ast.Reference) -> str:
+    """The agreement rule as written: ``agree within 2 sd``, ``agree inside range`` ..."""
+    if ref.rule == "range":
+        return "agree inside range"
+    if ref.rule == "sd":
+        return f"agree within {_number(ref.tolerance.value)} sd"
+    return f"agree within {_quantity(ref.tolerance)}"
+
+
+def _word(text: str) -> str:
+    """A condition text: bare when it reads back as one word, else quoted."""
+    import re
+
+    from .parser import _keywords
+
+    bare = re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", text) and text not in _keywords().values()
+    return text if bare else _string(text)
 
 
 def _measure_item(item: ast.MeasureItem) -> str:

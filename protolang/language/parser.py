@@ -27,6 +27,7 @@ from lark.lexer import PatternStr
 from . import ast
 from .errors import Collector, Diagnostic, ProtocolError, Span, remember_source, suggest
 from .units import DIMENSIONS, DISPLAY, UNITS, Quantity, check_unit, expect, to_si
+from ..measure.registry import COLLECTORS, REFERENCE_CONDITIONS, REFERENCE_MEASURES
 
 __all__ = ["parse", "parse_file"]
 
@@ -551,6 +552,13 @@ class _Pick(NamedTuple):
 
 class _Lesions(NamedTuple):
     items: tuple
+    span: Span
+
+
+class _RefLine(NamedTuple):
+    """One line of a ``reference`` block: its kind ("value", "range", "source", ...) and payload."""
+    kind: str
+    payload: object
     span: Span
 
 
@@ -1707,13 +1715,306 @@ class _Lowering(Transformer):
             self.references.append(_Reference(str(cell), self._tspan(cell), "measure"))
         return ast.Measure(cell=str(cell), items=tuple(items), span=self._span(meta))
 
+    # --- references: published values ------------------------------------------------------
+    def ref_field(self, meta, children):
+        name, q = children
+        return (str(name), q, self._tspan(name))
+
+    def ref_value(self, meta, children):
+        value, *fields = children
+        return _RefLine("value", (value, fields), self._span(meta))
+
+    def ref_range(self, meta, children):
+        low, high, *fields = children
+        return _RefLine("range", (low, high, fields), self._span(meta))
+
+    def ref_source(self, meta, children):
+        authors, year, journal = children
+        return _RefLine("source", (_unquote(authors), year, _unquote(journal), self._tspan(authors)),
+                        self._span(meta))
+
+    def ref_condition(self, meta, children):
+        name, first, second = (list(children) + [None])[:3]
+        return _RefLine("condition", (name, first, second), self._span(meta))
+
+    def agree_sd(self, meta, children):
+        (number,) = children
+        return _RefLine("agree", ("sd", Quantity(float(number), "", self._tspan(number))), self._span(meta))
+
+    def agree_within(self, meta, children):
+        (q,) = children
+        if isinstance(q, Quantity) and q.unit in ("SD", "Sd", "sD"):
+            return _RefLine("agree", ("sd", replace(q, unit="")), self._span(meta))
+        return _RefLine("agree", ("within", q), self._span(meta))
+
+    def agree_range(self, meta, children):
+        return _RefLine("agree", ("range", None), self._span(meta))
+
+    def ref_accept(self, meta, children):
+        return _RefLine("accept", [(str(t), self._tspan(t)) for t in children], self._span(meta))
+
+    def ref_memory(self, meta, children):
+        return _RefLine("memory", True, self._span(meta))
+
+    def ref_note(self, meta, children):
+        (text,) = children
+        return _RefLine("note", _unquote(text), self._span(meta))
+
+    def _ref_number(self, q, dimension: str, what: str) -> bool:
+        """A published number: no scan reference, and the measure's kind ("trace" is checked later)."""
+        if isinstance(q, ast.ScanRef):
+            self.c.fail(f"{what} cannot be scanned (@{q.name})", q.span,
+                        expected="a published number with its unit", hint="write the number out")
+            return False
+        if dimension == "trace":
+            return self._known_unit(q, ("voltage", "current"))
+        if dimension == "fraction":
+            if q.unit not in ("", "%"):
+                self.c.fail(f"{what} is a fraction, got {q}", q.span,
+                            expected="a percentage (e.g. 14 %) or a plain number from 0 to 1",
+                            hint=f"drop the unit {q.unit!r}")
+                return False
+            if not 0.0 <= q.si <= 1.0:
+                self.c.fail(f"{what} must lie between 0 and 1 (0 % and 100 %), got {q}", q.span,
+                            expected="a percentage (e.g. 14 %) or a plain number from 0 to 1")
+                return False
+            return True
+        return self._quantity(q, dimension, what) is not None
+
+    def reference(self, meta, children):
+        measure_tok, cell_tok, source_tok, *lines = children
+        span = self._span(meta)
+        measure = str(measure_tok)
+        entry = REFERENCE_MEASURES.get(measure)
+        ok = True
+        if entry is None:
+            self.c.fail(f"unknown measure {measure!r} in a reference", self._tspan(measure_tok),
+                        expected="one of " + ", ".join(REFERENCE_MEASURES),
+                        hint=suggest(measure, REFERENCE_MEASURES) or "see docs/language.md, 'reference'")
+            ok = False
+        dimension = entry["dimension"] if entry else "number"
+        what = f"the published {measure}"
+        self.references.append(_Reference(str(cell_tok), self._tspan(cell_tok), "reference"))
+        if source_tok is not None:
+            self.references.append(_Reference(str(source_tok), self._tspan(source_tok), "reference ... from"))
+        seen: dict = {}
+        got: dict = {"conditions": [], "accepted": [], "from_memory": False, "note": None}
+        for line in lines:
+            if line.kind == "condition":
+                name_tok, first, second = line.payload
+                key = ("condition", str(name_tok))
+            else:
+                key = line.kind
+            label = f"'{key[1]}' condition" if isinstance(key, tuple) else f"'{line.kind}' line"
+            if line.kind != "accept" and not self._once(seen, key, line.span, label + " in one reference"):
+                ok = False
+                continue
+            if line.kind in ("value", "range"):
+                numbers = line.payload[:-1]
+                for q in numbers:
+                    ok &= self._ref_number(q, dimension, what)
+                if line.kind == "value":
+                    got["value"] = numbers[0]
+                else:
+                    got["low"], got["high"] = numbers
+                for name, q, fspan in line.payload[-1]:
+                    if name not in ("sd", "n"):
+                        self.c.fail(f"unknown field {name!r} of a published value", fspan,
+                                    expected="'sd Q' (the published standard deviation) or 'n N' (cells or pairs)",
+                                    hint=suggest(name, ("sd", "n")))
+                        ok = False
+                    elif not self._once(seen, ("field", name), fspan, f"'{name}' of the published value"):
+                        ok = False
+                    elif name == "sd":
+                        if self._ref_number(q, "number" if dimension == "fraction" and not q.unit else dimension,
+                                            "the published SD") and q.value < 0:
+                            self.c.fail(f"a standard deviation cannot be negative, got {q}", q.span,
+                                        expected="an SD of 0 or more")
+                            ok = False
+                        got["sd"] = q
+                    else:
+                        n = None
+                        if isinstance(q, ast.ScanRef):
+                            self.c.fail("the published n cannot be scanned", q.span, expected="a whole number")
+                        else:
+                            n = self._count(_Count(f"{q.value:g}", q.unit, q.span), "the published n")
+                        ok &= n is not None
+                        got["n"] = n
+            elif line.kind == "source":
+                authors, year, journal, aspan = line.payload
+                y = self._count(year, "the year of the source")
+                if not authors.strip() or not journal.strip():
+                    self.c.fail("a source needs its authors and its journal", aspan,
+                                expected='source "AUTHORS" YEAR "JOURNAL VOLUME:PAGES"',
+                                hint='e.g. source "Smith and Jones" 2001 "J Physiol 530:1-12"')
+                    ok = False
+                elif y is not None and not 1800 <= y <= 2100:
+                    self.c.fail(f"{y} is not a publication year", year.span, expected="a year such as 1997")
+                    ok = False
+                got["source"] = (authors, y, journal)
+            elif line.kind == "condition":
+                ok &= self._ref_condition(name_tok, first, second, got)
+            elif line.kind == "agree":
+                ok &= self._ref_rule(line.payload, dimension, measure, got)
+            elif line.kind == "accept":
+                got["accepted"].extend(line.payload)
+            elif line.kind == "memory":
+                got["from_memory"] = True
+            elif line.kind == "note":
+                got["note"] = line.payload
+        example = ('source "AUTHORS" YEAR "JOURNAL VOLUME:PAGES", e.g. '
+                   'source "Smith and Jones" 2001 "J Physiol 530:1-12"')
+        if "source" not in got:
+            self.c.fail(f"the reference for {measure} of {cell_tok} has no source", span,
+                        expected="a 'source' line: " + example,
+                        hint="say where the published value comes from; add 'from memory' if it is recalled")
+            ok = False
+        if "value" not in got and "low" not in got:
+            self.c.fail(f"the reference for {measure} of {cell_tok} gives no published value", span,
+                        expected="a 'value Q, sd Q, n N' line or a 'range Q to Q' line",
+                        hint="e.g. 'value 1.3 mV, sd 1.1 mV, n 138'")
+            ok = False
+        if "agree" not in got:
+            self.c.fail(f"the reference for {measure} of {cell_tok} has no agreement rule", span,
+                        expected="'agree within K sd', 'agree within P %', 'agree within Q' (in the measure's "
+                                 "unit) or 'agree inside range'",
+                        hint="e.g. 'agree within 2 sd'")
+            ok = False
+        else:
+            rule, tol, rspan = got["agree"]
+            if rule == "sd" and "sd" not in got:
+                self.c.fail("'agree within ... sd' needs the published SD", rspan,
+                            expected="an 'sd Q' field on the value line, e.g. 'value 1.3 mV, sd 1.1 mV'",
+                            hint="give the SD, or use 'agree within 30 %'")
+                ok = False
+            if rule in ("sd", "relative", "absolute") and "value" not in got:
+                self.c.fail("this rule compares with the published mean, and the reference gives none", rspan,
+                            expected="a 'value Q' line", hint="give the mean, or use 'agree inside range'")
+                ok = False
+            if rule == "range" and "low" not in got:
+                self.c.fail("'agree inside range' needs the published range", rspan,
+                            expected="a 'range Q to Q' line", hint="e.g. 'range 0.15 mV to 5.5 mV'")
+                ok = False
+        if "low" in got and ok and got["low"].si > got["high"].si:
+            self.c.fail(f"the range runs backwards: {got['low']} to {got['high']}", got["low"].span,
+                        expected="the low end first")
+            ok = False
+        declared = {c.name for c in got["conditions"]}
+        accepted = []
+        for name, aspan in got["accepted"]:
+            if name not in REFERENCE_CONDITIONS:
+                self.c.fail(f"unknown condition {name!r} in 'accept different'", aspan,
+                            expected="one of " + ", ".join(REFERENCE_CONDITIONS),
+                            hint=suggest(name, REFERENCE_CONDITIONS))
+                ok = False
+            elif name not in declared:
+                self.c.fail(f"'accept different {name}', but the reference states no {name}", aspan,
+                            expected=f"a '{name} ...' line in this reference",
+                            hint=f"state the {name} of the published data, or drop it from 'accept different'")
+                ok = False
+            elif name not in accepted:
+                accepted.append(name)
+        if not ok:
+            return None
+        authors, year, journal = got["source"]
+        rule, tol, _ = got["agree"]
+        return ast.Reference(measure=measure, cell=str(cell_tok),
+                             source_cell=str(source_tok) if source_tok is not None else None,
+                             value=got.get("value"), sd=got.get("sd"), low=got.get("low"), high=got.get("high"),
+                             n=got.get("n"), authors=authors, year=year, journal=journal, rule=rule, tolerance=tol,
+                             conditions=tuple(got["conditions"]), accepted=tuple(accepted),
+                             from_memory=got["from_memory"], note=got["note"], span=span,
+                             measure_span=self._tspan(measure_tok), cell_span=self._tspan(cell_tok),
+                             source_span=self._tspan(source_tok) if source_tok is not None else None)
+
+    def _ref_condition(self, name_tok: Token, first, second, got: dict) -> bool:
+        name = str(name_tok)
+        kind = REFERENCE_CONDITIONS.get(name)
+        if kind is None:
+            words = {"value": "value Q, sd Q, n N", "range": "range Q to Q", "source": 'source "A" YEAR "J"',
+                     "agree": "agree within K sd", "accept": "accept different NAME", "note": 'note "TEXT"'}
+            self.c.fail(f"unknown line {name!r} in a reference", self._tspan(name_tok),
+                        expected="a condition (" + ", ".join(REFERENCE_CONDITIONS) + ") or one of: "
+                                 + "; ".join(words.values()),
+                        hint=suggest(name, [*REFERENCE_CONDITIONS, *words]))
+            return False
+        span = self._tspan(name_tok)
+        if kind == "text":
+            if isinstance(first, Token):
+                text = _unquote(first) if first.type == "STRING" else str(first)
+                got["conditions"].append(ast.ReferenceCondition(name=name, low=text, span=span))
+                return True
+            self.c.fail(f"the {name} of the published data is a word or a quoted text", span,
+                        expected=f'e.g. {name} rat' if name == "species" else f'e.g. {name} "P14-16"',
+                        hint="quote text that has spaces or dashes")
+            return False
+        if not isinstance(first, (Quantity, ast.ScanRef)):
+            example = {"calcium": "2 mM", "magnesium": "1 mM", "temperature": "32 degC to 34 degC"}[name]
+            self.c.fail(f"the {name} of the published data is a number with its unit", span,
+                        expected=f"e.g. {name} {example}")
+            return False
+        dimension = "temperature" if name == "temperature" else "concentration"
+        ok = all(self._ref_number(q, dimension, f"the published {name}") for q in (first, second) if q is not None)
+        if ok and second is not None and first.si > second.si:
+            self.c.fail(f"the {name} range runs backwards: {first} to {second}", first.span,
+                        expected="the low end first")
+            ok = False
+        if ok:
+            got["conditions"].append(ast.ReferenceCondition(name=name, low=first, high=second, span=span))
+        return ok
+
+    def _ref_rule(self, payload, dimension: str, measure: str, got: dict) -> bool:
+        rule, q = payload
+        span = q.span if q is not None else None
+        if rule == "sd":
+            if q.value <= 0:
+                self.c.fail(f"the tolerance must be more than 0 SD, got {q.value:g}", q.span,
+                            expected="a positive number of published SDs, e.g. 2 sd")
+                return False
+            got["agree"] = ("sd", q, q.span)
+            return True
+        if rule == "range":
+            got["agree"] = ("range", None, None)
+            return True
+        if isinstance(q, ast.ScanRef):
+            self.c.fail(f"a tolerance cannot be scanned (@{q.name})", q.span, expected="a number with its unit")
+            return False
+        kinds = {"trace": "a voltage or a current (the recorded trace's unit)",
+                 "fraction": "a plain number (absolute, e.g. 0.05)"}
+        absolute = kinds[dimension] if dimension in kinds else DIMENSIONS[dimension]
+        expected = f"'K sd' (published SDs), a percentage (relative to the published mean) or {absolute}"
+        if q.unit and q.unit not in UNITS:
+            self._known_unit(q, ("percent", "voltage", "current") if dimension == "trace"
+                             else ("percent", dimension if dimension != "fraction" else "number"))
+            return False
+        if q.unit == "%":
+            kind = "relative"
+        else:
+            wanted = {"trace": ("voltage", "current"), "fraction": ("number",)}.get(dimension, (dimension,))
+            if q.dimension not in wanted:
+                got_text = "a plain number" if not q.unit else f"{q.unit!r} ({q.dimension})"
+                self.c.fail(f"a tolerance in the wrong unit for {measure}: got {got_text}", q.span,
+                            expected=expected,
+                            hint=f"e.g. 'agree within 2 sd' or 'agree within 25 %'")
+                return False
+            kind = "absolute"
+        if q.value <= 0:
+            self.c.fail(f"the tolerance must be more than 0, got {q}", q.span, expected=expected)
+            return False
+        got["agree"] = (kind, q, q.span)
+        return True
+
     # --- the whole file -------------------------------------------------------------------
     def start(self, meta, children) -> ast.Protocol | None:
         found: dict[str, object] = {}
         seen: dict = {}
         recordings, stimuli, measures = [], [], []
         scans: list[ast.Scan] = []
+        references: list[ast.Reference] = []
         for statement in children:
+            if isinstance(statement, ast.Reference):
+                references.append(statement)
+                continue
             if isinstance(statement, ast.Scan):
                 if any(x.name == statement.name for x in scans):
                     first = next(x for x in scans if x.name == statement.name)
@@ -1759,6 +2060,7 @@ class _Lowering(Transformer):
         self._check_drives(recordings, stimuli)
         if cells is not None:
             self._check_turns(cells, stimuli)
+            references = self._check_references(references, cells, recordings, measures)
         sweeps = found.get("sweeps")
         if sweeps is not None and self.sweep_count_ok:
             self._check_families(sweeps, stimuli)
@@ -1796,8 +2098,74 @@ class _Lowering(Transformer):
                             recordings=tuple(recordings), stimuli=tuple(stimuli),
                             measures=tuple(measures), scans=tuple(scans),
                             lesions=lesions.items if lesions else (), network=network,
-                            file=self.file, span=title.span,
+                            references=tuple(references), file=self.file, span=title.span,
                             circuit_span=circuit.path_span)
+
+    def _check_references(self, references: list[ast.Reference], cells: ast.Cells,
+                          recordings: list[ast.Recording], measures: list[ast.Measure]) -> list[ast.Reference]:
+        """A reference names a measure the protocol collects, of the kind the cell's recording gives."""
+        patches = {p.name for p in cells.picks if isinstance(p, ast.PatchPick)}
+        picks = {p.name: p for p in cells.picks}
+        modes = {r.cell: r.mode for r in recordings}
+        blocks = {m.cell: m for m in measures}
+        kept, seen = [], {}
+        for ref in references:
+            entry = REFERENCE_MEASURES[ref.measure]
+            what = f"reference {ref.measure} of {ref.cell}" + (f" from {ref.source_cell}" if ref.source_cell else "")
+            if not self._once(seen, (ref.measure, ref.cell, ref.source_cell), ref.span, f"'{what}'"):
+                continue
+            on_patch = ref.cell in patches
+            wants_source = entry["source"] and not on_patch
+            if wants_source and ref.source_cell is None:
+                self.c.fail(f"'{what}' needs the presynaptic cell", ref.cell_span,
+                            expected=f"'reference {ref.measure} of {ref.cell} from PRE'",
+                            hint="name the stimulated cell, e.g. 'from pre'")
+                continue
+            if not wants_source and ref.source_cell is not None:
+                why = "a patch is tested pair by pair" if on_patch else "it is a property of one cell"
+                self.c.fail(f"'{ref.measure}' takes no 'from' cell: {why}", ref.source_span,
+                            expected=f"'reference {ref.measure} of {ref.cell}'", hint=f"drop 'from {ref.source_cell}'")
+                continue
+            usable = [c for c in entry["collectors"] if (COLLECTORS[c].get("scope") == "patch") == on_patch]
+            block = blocks.get(ref.cell)
+            items = block.items if block else ()
+            found = [i for i in items if i.collector in usable and i.source == (ref.source_cell if wants_source else None)]
+            if not found:
+                collector = usable[0] if usable else entry["collectors"][0]
+                item = f"{collector} to {ref.source_cell}" if wants_source else collector
+                self.c.fail(f"'{what}' compares a measure the protocol does not collect", ref.measure_span,
+                            expected=f"'{item}' in a 'measure {ref.cell}:' block",
+                            hint=f"add '{item}' under 'measure {ref.cell}:'" if block else
+                                 f"add a block 'measure {ref.cell}:' with the line '{item}'")
+                continue
+            if ref.measure == "probability" and not on_patch:
+                pick = picks.get(ref.cell)
+                linked = [c for c in getattr(pick, "constraints", ()) if isinstance(c, ast.ReceivingFrom)
+                          and c.source == ref.source_cell]
+                if linked:
+                    self.c.fail(f"'{what}': {ref.cell!r} is selected 'receiving from {ref.source_cell}', so every "
+                                "tested pair is connected", linked[0].span,
+                                expected="pairs selected by distance only",
+                                hint=f"drop 'receiving from {ref.source_cell}' (a separate protocol can measure the "
+                                     "connected pairs' responses)")
+                    continue
+            if entry["dimension"] == "trace":
+                trace = "current" if modes.get(ref.cell) == "voltage clamp" else "voltage"
+                mode = "voltage clamp" if trace == "current" else "current clamp"
+                bad = [q for q in (ref.value, ref.sd, ref.low, ref.high, ref.tolerance)
+                       if isinstance(q, Quantity) and q.unit not in ("", "%", "sd") and q.dimension != trace]
+                if bad:
+                    self.c.fail(f"{ref.cell!r} is recorded in {mode}, so its {ref.measure} is a {trace}, got {bad[0]}",
+                                bad[0].span, expected=DIMENSIONS[trace],
+                                hint=f"give the published value in {DISPLAY[trace]}, or record {ref.cell!r} in the "
+                                     "mode the paper used")
+                    continue
+                if isinstance(ref.value, Quantity) and not ref.value.unit:
+                    self.c.fail(f"the published {ref.measure} needs a unit", ref.value.span,
+                                expected=DIMENSIONS[trace], hint=f"e.g. {ref.value.value:g} {DISPLAY[trace]}")
+                    continue
+            kept.append(ref)
+        return kept
 
     def _check_turns(self, cells: ast.Cells, stimuli: list[ast.Stimulate]) -> None:
         """A patch is stimulated one cell at a time (`in turn every T`); a single cell is not."""

@@ -29,6 +29,7 @@ DIMENSIONS = {
     "specific_conductance": "a conductance per membrane area (e.g. 0.1 mS/cm2)",
     "specific_capacitance": "a capacitance per membrane area (e.g. 1 uF/cm2)",
     "memory": "an amount of memory (e.g. 4 GB)",
+    "gain": "a firing-rate gain (e.g. 50 Hz/nA)",
     "number": "a plain number",
 }
 
@@ -58,6 +59,8 @@ UNITS: dict[str, tuple[str, float]] = {
     "uF/cm2": ("specific_capacitance", 1e-2), "F/m2": ("specific_capacitance", 1.0),
     # bytes (decimal prefixes)
     "kB": ("memory", 1e3), "MB": ("memory", 1e6), "GB": ("memory", 1e9),
+    # firing-rate gain of an F-I curve, SI Hz/A
+    "Hz/nA": ("gain", 1e9), "Hz/pA": ("gain", 1e12),
 }
 
 # Display units used when writing tables and plans back out.
@@ -65,7 +68,7 @@ DISPLAY = {
     "time": "ms", "voltage": "mV", "current": "pA", "conductance": "nS",
     "resistance": "MOhm", "capacitance": "pF", "frequency": "Hz", "concentration": "mM",
     "length": "um", "temperature": "degC", "percent": "%", "velocity": "m/s",
-    "specific_conductance": "mS/cm2", "specific_capacitance": "uF/cm2", "memory": "GB",
+    "specific_conductance": "mS/cm2", "specific_capacitance": "uF/cm2", "memory": "GB", "gain": "Hz/nA",
 }
 
 

@@ -130,8 +130,8 @@ def collect(plan: "Plan", recordings: "Recordings",
     Returns:
         ``{table name: DataFrame}`` for the tables the plan's collectors produce
         (``responses``, ``connections``, ``pathways``, ``spikes``, ``cell_sweeps``,
-        ``cells``, ``classes``, ``populations``, ``bursts``); rows of several measures feeding the same table are
-        concatenated.
+        ``cells``, ``classes``, ``populations``, ``bursts``; ``comparison`` when the protocol has
+        ``reference`` blocks); rows of several measures feeding the same table are concatenated.
 
     Raises:
         AssertionError: an internal error (unknown collector or option, a measured cell
@@ -180,6 +180,10 @@ def collect(plan: "Plan", recordings: "Recordings",
     if "connections" in tables:
         tables["connections"] = _order_connection_columns(tables["connections"])
         tables["pathways"] = summarise_pathways(tables["connections"])
+    if plan.references:
+        from .compare import compare
+
+        tables["comparison"] = compare(plan.references, tables)
     return tables
 
 

@@ -58,10 +58,12 @@ def collect_plasticity(plan: "Plan", recordings: "Recordings", measure: "Measure
     for (pathway, repeat), group in connected.groupby(["pathway", "repeat"], sort=True):
         amps = _matrix(group, column, n_sweeps, n_events) / unit.scale
         pooled.setdefault(pathway, []).append(amps)
-        rows.append(_row("connection", pathway, int(repeat), group.iloc[0], times, amps, n_boot, plan.seed, unit))
+        rows.append(_row("connection", pathway, int(repeat), group.iloc[0], times, amps, n_boot, plan.seed, unit)
+                    | {"pre": measure.source, "post": measure.cell})
     for pathway, parts in pooled.items():
         amps = np.concatenate(parts, axis=0)
-        rows.append(_row("pathway", pathway, -1, None, times, amps, n_boot, plan.seed, unit))
+        rows.append(_row("pathway", pathway, -1, None, times, amps, n_boot, plan.seed, unit)
+                    | {"pre": measure.source, "post": measure.cell})
     return pd.DataFrame(rows)
 
 

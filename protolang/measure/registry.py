@@ -146,3 +146,73 @@ def option_defaults(collector: str) -> dict[str, float]:
         KeyError: unknown collector (the front end reports user mistakes before this).
     """
     return {name: default for name, (_dim, default) in COLLECTORS[collector]["options"].items()}
+
+
+# --- quantities a `reference` block may compare with published values --------------------
+# name -> where the model's values come from. ``collectors``: any one of them measuring the cell
+# provides it (the first listed is read first); ``table``/``column``: the per-unit table (one row per
+# connection, tested pair or cell) and its column, ``{unit}`` standing for the trace unit (mV in
+# current clamp, pA in voltage clamp); ``dimension``: what a published value must be ("trace": the
+# recorded trace's kind, "fraction": a percentage or a plain number from 0 to 1); ``source``: the
+# reference names a presynaptic cell (`reference amplitude of post from pre`).
+REFERENCE_MEASURES: dict[str, dict] = {
+    "amplitude": {"collectors": ("responses",), "table": "connections", "column": "amplitude_mean_{unit}",
+                  "dimension": "trace", "source": True,
+                  "description": "mean amplitude of the first response, failures included, per connection"},
+    "cv": {"collectors": ("responses",), "table": "connections", "column": "cv", "dimension": "number",
+           "source": True, "description": "coefficient of variation of the first response, per connection"},
+    "failures": {"collectors": ("responses",), "table": "connections", "column": "failure_rate",
+                 "dimension": "fraction", "source": True,
+                 "description": "fraction of failures among first responses, per connection"},
+    "latency": {"collectors": ("responses",), "table": "connections", "column": "latency_ms", "dimension": "time",
+                "source": True, "description": "presynaptic spike to 10 % of the peak, per connection"},
+    "rise": {"collectors": ("responses",), "table": "connections", "column": "rise_20_80_ms", "dimension": "time",
+             "source": True, "description": "20-80 % rise time, per connection"},
+    "decay": {"collectors": ("responses",), "table": "connections", "column": "decay_tau_ms", "dimension": "time",
+              "source": True, "description": "decay time constant, per connection"},
+    "ppr": {"collectors": ("responses",), "table": "connections", "column": "ppr", "dimension": "number",
+            "source": True, "description": "paired-pulse ratio (second train response / first), per connection"},
+    "recovery": {"collectors": ("responses",), "table": "connections", "column": "recovery_ratio",
+                 "dimension": "number", "source": True,
+                 "description": "recovery probe response / first response, per connection"},
+    "probability": {"collectors": ("responses", "connectivity"), "table": "connections", "column": "connected",
+                    "dimension": "fraction", "source": True,
+                    "description": "connection probability: per tested pair, 1 if connected (`responses`: the "
+                                   "circuit's connection; `connectivity` of a patch: a detected response)"},
+    "U": {"collectors": ("plasticity",), "table": "plasticity", "column": "tm_U", "dimension": "number",
+          "source": True, "description": "Tsodyks-Markram utilisation U, per converged connection fit"},
+    "D": {"collectors": ("plasticity",), "table": "plasticity", "column": "tm_D_ms", "dimension": "time",
+          "source": True, "description": "Tsodyks-Markram recovery time constant D, per converged connection fit"},
+    "F": {"collectors": ("plasticity",), "table": "plasticity", "column": "tm_F_ms", "dimension": "time",
+          "source": True, "description": "Tsodyks-Markram facilitation time constant F, per converged connection fit"},
+    "rest": {"collectors": ("passive",), "table": "cells", "column": "rest_mV", "dimension": "voltage",
+             "source": False, "description": "resting potential, per cell"},
+    "input_resistance": {"collectors": ("passive",), "table": "cells", "column": "input_resistance_MOhm",
+                         "dimension": "resistance", "source": False, "description": "input resistance, per cell"},
+    "membrane_tau": {"collectors": ("passive",), "table": "cells", "column": "tau_ms", "dimension": "time",
+                     "source": False, "description": "membrane time constant, per cell"},
+    "sag": {"collectors": ("passive",), "table": "cells", "column": "sag_ratio", "dimension": "number",
+            "source": False, "description": "sag ratio of the hyperpolarising step, per cell"},
+    "rheobase": {"collectors": ("rheobase", "fi"), "table": "cells", "column": ("rheobase_pA", "family_rheobase_pA"),
+                 "dimension": "current", "source": False,
+                 "description": "rheobase, per cell (the `rheobase` search, else the lowest step of `fi` that fires)"},
+    "fi_slope": {"collectors": ("fi",), "table": "cells", "column": "fi_slope_Hz_per_nA", "dimension": "gain",
+                 "source": False, "description": "slope of the F-I curve above rheobase, per cell"},
+    "threshold": {"collectors": ("firing",), "table": "cells", "column": "threshold_mV", "dimension": "voltage",
+                  "source": False, "description": "spike threshold, per cell"},
+    "spike_amplitude": {"collectors": ("firing",), "table": "cells", "column": "spike_amplitude_mV",
+                        "dimension": "voltage", "source": False, "description": "spike amplitude, per cell"},
+    "half_width": {"collectors": ("firing",), "table": "cells", "column": "half_width_ms", "dimension": "time",
+                   "source": False, "description": "spike width at half amplitude, per cell"},
+    "ahp": {"collectors": ("firing",), "table": "cells", "column": "ahp_mV", "dimension": "voltage",
+            "source": False, "description": "afterhyperpolarisation depth, per cell"},
+    "max_rate": {"collectors": ("firing",), "table": "cells", "column": "max_rate_Hz", "dimension": "frequency",
+                 "source": False, "description": "highest firing rate over the depolarising steps, per cell"},
+    "adaptation": {"collectors": ("firing",), "table": "cells", "column": "adaptation_index", "dimension": "number",
+                   "source": False, "description": "spike-frequency adaptation index, per cell"},
+}
+
+# Conditions a reference may state: name -> "number" (compared with the protocol's bath, given as a
+# value or a range) or "text" (compared with the circuit's own statement, if it makes one).
+REFERENCE_CONDITIONS: dict[str, str] = {"calcium": "number", "magnesium": "number", "temperature": "number",
+                                        "species": "text", "age": "text"}

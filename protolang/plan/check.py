@@ -11,6 +11,7 @@ from ..language.errors import Collector, suggest
 from ..language.units import DIMENSIONS, expect
 from ..language.errors import ProtocolError
 from ..measure.registry import COLLECTORS
+from .references import check_references
 
 NETWORK_TARGET = "network"   # the name `measure` uses for the whole embedded network (as the parser)
 
@@ -364,6 +365,7 @@ CHECKS = (
     check_lesions,
     check_network,
     check_fits,
+    check_references,
 )
 
 

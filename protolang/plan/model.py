@@ -341,6 +341,8 @@ class Plan:
     lesions: list[LesionRecord] = field(default_factory=list)
     network: NetworkPlan | None = None
     patches: list[PatchPlan] = field(default_factory=list)
+    # published references (protolang.plan.references.reference_plans), in table-column units
+    references: list[dict] = field(default_factory=list)
 
     def role(self, name: str) -> RolePlan:
         for r in self.roles:

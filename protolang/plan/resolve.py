@@ -24,6 +24,7 @@ from ..engine.models import (HH_MODELS, membrane_area, hh_slow_time_constants, h
 from ..language.patch import expand_patches
 from ..measure.registry import COLLECTORS, patch_collectors
 from .check import find_pathway, run_checks
+from .references import reference_plans
 from .model import (ActivationPlan, CurrentPulse, MeasurePlan, NoiseSpec, PatchPlan, Plan, PoissonSpec, ReceptorPlan,
                     RolePlan, StimulusEvent, SynapsePlan, WaveSegment)
 from .lesions import check_pools, repeat_lesions, whole_circuit_lesions
@@ -505,7 +506,8 @@ def resolve(protocol: ast.Protocol, circuit, instance=None, *, source_text: str 
         n_sweeps=sw.count, interval=interval, n_repeat=n_repeat, layout=layout, layout_reason=reason,
         mode=settings["mode"], conditions=cond, roles=roles, receptors=receptors, synapses=synapses,
         measures=measures, spans=spans, notes=notes, activations=activations,
-        lesions=lesions.records, network=network, patches=patches)
+        lesions=lesions.records, network=network, patches=patches,
+        references=reference_plans(protocol, circuit, {r.cell: r.mode for r in protocol.recordings}))
 
 
 def _layout(settings, interval, length, roles, receptors, synapses) -> tuple[str, str]:

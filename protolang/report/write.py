@@ -177,6 +177,10 @@ def write_figures(fig_dir: str | os.PathLike, plan: "Plan", recordings: "Recordi
         ``{file name: Path}``; empty when there is no ``connections`` table.
     """
     written: dict[str, Path] = {}
+    if plan.references and "comparison" in tables:
+        from .comparison_figures import write_comparison_figures
+
+        written.update(write_comparison_figures(Path(fig_dir), plan.references, tables))
     if recordings.population and "populations" in tables:
         written.update(_network_figures(Path(fig_dir), recordings, tables))
     if "patch_connectivity" in tables and len(tables["patch_connectivity"]):
