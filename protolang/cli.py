@@ -1,4 +1,4 @@
-"""Command line: a thin layer over the public API (check, parse, plan, run).
+"""Command line: a thin layer over the public API (check, parse, plan, run, predict).
 
 User errors print as ``file:line:col: error: ...`` and exit with status 1; there is never a
 traceback for a user's mistake. ``run --require-agreement`` exits with status 2 when a published
@@ -126,6 +126,38 @@ def cmd_run(args) -> int:
     return 0
 
 
+def cmd_predict(args) -> int:
+    from .language.errors import error
+    from .language.units import parse_quantity
+    from .predict import Standard, predict
+
+    start = time.perf_counter()
+
+    def progress(msg: str) -> None:
+        if not args.quiet:
+            _err(f"[{time.perf_counter() - start:7.1f} s] {msg}")
+
+    distance = parse_quantity(args.distance)
+    if distance.dimension != "length" or distance.si <= 0:
+        raise error(f"--distance needs a positive length, got {args.distance!r}", None,
+                    expected="a length such as '150 um'", hint="e.g. --distance '150 um'")
+    for flag, value in (("--pairs", args.pairs), ("--sweeps", args.sweeps)):
+        if value < 1:
+            raise error(f"{flag} must be at least 1, got {value}", None, expected="a positive whole number")
+    if args.bootstrap < 0:
+        raise error(f"--bootstrap must be 0 or more, got {args.bootstrap}", None, expected="a whole number >= 0")
+    standard = Standard(pairs=args.pairs, sweeps=args.sweeps, distance_um=distance.si * 1e6, seed=args.seed,
+                        bootstrap=args.bootstrap)
+    table = predict(args.circuit, args.out, standard=standard, replays=args.replays or [], target=args.target,
+                    force=args.force, progress=progress)
+    shown = ["pathway", "status", "probability", "amplitude_mV", "cv", "failure_rate", "ppr", "tm_U", "tm_D_ms",
+             "tm_F_ms", "reference_backed", "references_agreeing"]
+    with __import__("pandas").option_context("display.width", 200, "display.max_columns", 20):
+        print(table[shown].to_string(index=False, float_format=lambda x: f"{x:.3g}"))
+    print(f"prediction table written to {args.out}/predictions.csv")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(prog="protolang", description="In-silico paired-recording protocols on Brian2.")
     sub = ap.add_subparsers(dest="command", required=True)
@@ -153,6 +185,22 @@ def build_parser() -> argparse.ArgumentParser:
                    help="exit with status 2 when any reference does not agree (or has no model data); "
                         "the run folder is written either way")
     p.set_defaults(func=cmd_run)
+    p = sub.add_parser("predict", help="run the standard paired protocol over every pathway of a circuit and "
+                                       "write the predicted connection-type table")
+    p.add_argument("circuit", help="circuit YAML file")
+    p.add_argument("--out", required=True, help="output folder to create")
+    p.add_argument("--pairs", type=int, default=30, help="connected pairs (and distance-only probe pairs) per pathway")
+    p.add_argument("--sweeps", type=int, default=20, help="sweeps per pair (one every 10 s)")
+    p.add_argument("--distance", default="150 um", help="largest soma distance of a tested pair (default 150 um)")
+    p.add_argument("--seed", type=int, default=1, help="seed of the standard protocol's selection and noise")
+    p.add_argument("--bootstrap", type=int, default=0,
+                   help="bootstrap resamples behind the fitted U, D, F intervals in each run folder (default 0)")
+    p.add_argument("--replays", nargs="*", metavar="PATH",
+                   help="replay protocols, folders of them, or their run folders: their references back rows")
+    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython"])
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.set_defaults(func=cmd_predict)
     return ap
 
 
