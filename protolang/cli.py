@@ -88,6 +88,14 @@ def cmd_plan(args) -> int:
         print(f"network    region {summary['region']}: {summary['cells']} cells, {summary['connections']} connections "
               f"({summary['release_sites']} release sites), estimated {summary['memory_estimate_GB']:g} GB of "
               f"{summary['memory_limit_GB']:g} GB allowed")
+    for ref in plan.references:
+        what = f"{ref['measure']} of {ref['cell']}" + (f" from {ref['source_cell']}" if ref["source_cell"] else "")
+        unit = f" {ref['unit']}" if ref["unit"] else ""
+        value = f"{ref['value']:g}{unit}" if ref["value"] is not None else f"{ref['low']:g} to {ref['high']:g}{unit}"
+        extra = (f", sd {ref['sd']:g}" if ref["sd"] is not None else "") + (f", n {ref['n']}" if ref["n"] is not None else "")
+        memo = " [from memory]" if ref["from_memory"] else ""
+        differs = f"; differs: {ref['differences']}" if ref["differences"] else ""
+        print(f"reference  {what}: {value}{extra}, agree {ref['rule_text']} ({ref['source']}){memo}{differs}")
     for note in plan.notes:
         print(note)
     return 0
