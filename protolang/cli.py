@@ -149,13 +149,13 @@ def cmd_predict(args) -> int:
     if distance.dimension != "length" or distance.si <= 0:
         raise error(f"--distance needs a positive length, got {args.distance!r}", None,
                     expected="a length such as '150 um'", hint="e.g. --distance '150 um'")
-    for flag, value in (("--pairs", args.pairs), ("--sweeps", args.sweeps)):
+    for flag, value in (("--pairs", args.pairs), ("--sweeps", args.sweeps), ("--probes", args.probes)):
         if value < 1:
             raise error(f"{flag} must be at least 1, got {value}", None, expected="a positive whole number")
     if args.bootstrap < 0:
         raise error(f"--bootstrap must be 0 or more, got {args.bootstrap}", None, expected="a whole number >= 0")
     standard = Standard(pairs=args.pairs, sweeps=args.sweeps, distance_um=distance.si * 1e6, seed=args.seed,
-                        bootstrap=args.bootstrap)
+                        bootstrap=args.bootstrap, probes=args.probes)
     table = predict(args.circuit, args.out, standard=standard, replays=args.replays or [], target=args.target,
                     force=args.force, progress=progress)
     shown = ["pathway", "status", "probability", "amplitude_mV", "cv", "failure_rate", "ppr", "tm_U", "tm_D_ms",
@@ -197,8 +197,10 @@ def build_parser() -> argparse.ArgumentParser:
                                        "write the predicted connection-type table")
     p.add_argument("circuit", help="circuit YAML file")
     p.add_argument("--out", required=True, help="output folder to create")
-    p.add_argument("--pairs", type=int, default=30, help="connected pairs (and distance-only probe pairs) per pathway")
+    p.add_argument("--pairs", type=int, default=30, help="repeats per pathway: one connected pair and --probes distance-only pairs each")
     p.add_argument("--sweeps", type=int, default=20, help="sweeps per pair (one every 10 s)")
+    p.add_argument("--probes", type=int, default=4,
+                   help="postsynaptic cells per repeat chosen by distance only, for the connection probability")
     p.add_argument("--distance", default="150 um", help="largest soma distance of a tested pair (default 150 um)")
     p.add_argument("--seed", type=int, default=1, help="seed of the standard protocol's selection and noise")
     p.add_argument("--bootstrap", type=int, default=0,

@@ -3,9 +3,9 @@
 For each pathway ``PRE -> POST`` of the circuit the standard paired protocol (written out as
 protolang text in ``OUT/protocols/``, so every row can be rerun and read) selects, per repeat,
 one presynaptic cell, one postsynaptic cell it connects to (``post ... receiving from pre``) and
-one postsynaptic cell chosen by distance only (``probe``). The presynaptic cell fires an 8-pulse
+``probes`` postsynaptic cells chosen by distance only (``probe_1`` ...). The presynaptic cell fires an 8-pulse
 20 Hz train and a recovery pulse 550 ms after the train, current-clamped. ``post`` gives the
-response measures and the Tsodyks-Markram fit; ``probe`` gives the connection probability (the
+response measures and the Tsodyks-Markram fit; the probes give the connection probability (the
 fraction of the tested pairs that are connected, with a Wilson 95 % interval, beside the
 circuit rule's expected fraction for the same pairs). Inhibitory pathways (every receptor reverses
 below -50 mV) are recorded at a holding potential of -60 mV, excitatory ones at -70 mV.
@@ -53,6 +53,7 @@ class Standard:
     noise_mV: float = 0.03
     rate_Hz: float = 20.0
     pulses: int = 8
+    probes: int = 4          # distance-only postsynaptic cells per repeat: tested pairs = pairs x probes
     bootstrap: int = 0       # resamples behind the fit's intervals (0: point fits only, much faster)
     extra: dict = field(default_factory=dict)
 
@@ -72,14 +73,15 @@ def standard_protocol(circuit_path: Path, pathway, standard: Standard, *, inhibi
         "cells:",
         f"    pre is {pathway.pre}",
         f"    post is {pathway.post} within {s.distance_um:g} um of pre, receiving from pre",
-        f"    probe is {pathway.post} within {s.distance_um:g} um of pre",
+        *[f"    probe_{k} is {pathway.post} within {s.distance_um:g} um of pre" for k in range(1, s.probes + 1)],
         f"    repeat {s.pairs}",
         "",
         f"sweeps {s.sweeps} every {s.interval_s:g} s",
         "",
         "record pre: current clamp",
         f"record post: current clamp, holding {holding} mV, noise {s.noise_mV:g} mV",
-        f"record probe: current clamp, holding {holding} mV, noise {s.noise_mV:g} mV",
+        *[f"record probe_{k}: current clamp, holding {holding} mV, noise {s.noise_mV:g} mV"
+          for k in range(1, s.probes + 1)],
         "",
         "stimulate pre:",
         f"    train {s.pulses} pulses of 1.5 nA for 2 ms at {s.rate_Hz:g} Hz from {start_ms:g} ms",
@@ -89,9 +91,7 @@ def standard_protocol(circuit_path: Path, pathway, standard: Standard, *, inhibi
         "    responses to pre",
         f"    plasticity to pre, bootstrap {s.bootstrap}",
         "",
-        "measure probe:",
-        "    responses to pre",
-        "",
+        *[line for k in range(1, s.probes + 1) for line in (f"measure probe_{k}:", "    responses to pre", "")],
     ])
 
 
@@ -112,12 +112,13 @@ def prediction_row(pathway, tables: dict, plan, holding_mV: float) -> dict:
     from .measure.anatomy import wilson_interval
 
     conn = tables["connections"]
-    probe = conn[conn["post"] == "probe"]
+    probe = conn[conn["post"].astype(str).str.startswith("probe_")]
     post = conn[(conn["post"] == "post") & conn["connected"].astype(bool)]
     k, n = int(probe["connected"].sum()), int(len(probe))
     low, high = wilson_interval(k, n)
-    probe_syn = next(s for s in plan.synapses if s.pre == "pre" and s.post == "probe")
-    rule = float(np.mean(probe_syn.rule_probability)) if probe_syn.rule_probability is not None else math.nan
+    rules = [s.rule_probability for s in plan.synapses if s.pre == "pre" and s.post.startswith("probe_")
+             and s.rule_probability is not None]
+    rule = float(np.mean(np.concatenate(rules))) if rules else math.nan
     unit = "mV"
 
     def stat(column: str, how=np.mean) -> float:

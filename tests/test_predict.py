@@ -30,7 +30,8 @@ def test_standard_protocol_checks_for_every_pathway_of_the_demo():
         assert holding in text
         # GABA_A reverses at -75 mV in the demo: the inhibitory pathways are exactly the GABAergic ones
         assert inhibitory == (set(pathway.receptors) == {"GABA_A"})
-        assert "receiving from pre" in text.split("probe is")[0] and "receiving" not in text.split("probe is")[1]
+        head, *probes = text.split("probe_")
+        assert "receiving from pre" in head and len(probes) > 4 and not any("receiving" in x for x in probes)
 
 
 class _Syn:
@@ -39,7 +40,7 @@ class _Syn:
 
 
 class _Plan:
-    synapses = [_Syn("pre", "post", [0.2] * 4), _Syn("pre", "probe", [0.1, 0.2, 0.3, 0.4])]
+    synapses = [_Syn("pre", "post", [0.2] * 4), _Syn("pre", "probe_1", [0.1, 0.2]), _Syn("pre", "probe_2", [0.3, 0.4])]
 
 
 class _Pathway:
@@ -48,7 +49,7 @@ class _Pathway:
 
 def test_prediction_row_from_hand_built_tables():
     conn = pd.DataFrame({
-        "post": ["post"] * 4 + ["probe"] * 4,
+        "post": ["post"] * 4 + ["probe_1", "probe_2"] * 2,
         "connected": [True, True, True, False, True, False, False, False],
         "amplitude_mean_mV": [1.0, 2.0, 4.0, 0.0, 9.0, 0.0, 0.0, 0.0],
         "cv": [0.2, 0.4, np.nan, np.nan, 1.0, 0, 0, 0],
@@ -137,7 +138,7 @@ def test_predict_end_to_end_on_a_two_pathway_circuit(tmp_path):
     # a tolerance of 100 SD agrees with any plausible amplitude: this replay tests the backing columns
     replay.write_text(REPLAY.format(circuit=circuit))
     out = tmp_path / "pred"
-    table = predict(str(circuit), str(out), standard=Standard(pairs=3, sweeps=3, seed=2), replays=[str(replay)],
+    table = predict(str(circuit), str(out), standard=Standard(pairs=3, sweeps=3, seed=2, probes=2), replays=[str(replay)],
                     target="numpy")
     assert list(table.columns) == PREDICTION_COLUMNS
     assert list(table["pathway"]) == ["pyramidal_deep->pyramidal_deep", "basket_fast->pyramidal_deep"]
@@ -146,7 +147,7 @@ def test_predict_end_to_end_on_a_two_pathway_circuit(tmp_path):
     assert list(table["reference_backed"]) == [True, False]
     assert table["references_agreeing"].iloc[0] == "1 of 1"
     assert "Markram" in table["references"].iloc[0]
-    assert (table["n_pairs_tested"] == 3).all() and (table["n_connections"] == 3).all()
+    assert (table["n_pairs_tested"] == 6).all() and (table["n_connections"] == 3).all()
     written = pd.read_csv(out / "predictions.csv")
     assert len(written) == 2
     # each row is the summary of its own run folder's connections table (a consistency check)
