@@ -1766,8 +1766,18 @@ class _Lowering(Transformer):
             self.c.fail(f"{what} cannot be scanned (@{q.name})", q.span,
                         expected="a published number with its unit", hint="write the number out")
             return False
+        if dimension is None:
+            return True   # an unknown measure has its own error; its numbers cannot be judged
         if dimension == "trace":
-            return self._known_unit(q, ("voltage", "current"))
+            if not self._known_unit(q, ("voltage", "current")):
+                return False
+            if q.dimension not in ("voltage", "current"):
+                got = "a plain number" if not q.unit else f"{q.unit!r} ({q.dimension})"
+                self.c.fail(f"{what} needs a voltage (current clamp) or a current (voltage clamp), got {got}",
+                            q.span, expected="a voltage such as 1.3 mV, or a current such as 25 pA",
+                            hint="give the unit of the recorded trace")
+                return False
+            return True
         if dimension == "fraction":
             if q.unit not in ("", "%"):
                 self.c.fail(f"{what} is a fraction, got {q}", q.span,
@@ -1792,7 +1802,7 @@ class _Lowering(Transformer):
                         expected="one of " + ", ".join(REFERENCE_MEASURES),
                         hint=suggest(measure, REFERENCE_MEASURES) or "see docs/language.md, 'reference'")
             ok = False
-        dimension = entry["dimension"] if entry else "number"
+        dimension = entry["dimension"] if entry else None
         what = f"the published {measure}"
         self.references.append(_Reference(str(cell_tok), self._tspan(cell_tok), "reference"))
         if source_tok is not None:
@@ -1826,12 +1836,16 @@ class _Lowering(Transformer):
                     elif not self._once(seen, ("field", name), fspan, f"'{name}' of the published value"):
                         ok = False
                     elif name == "sd":
-                        if self._ref_number(q, "number" if dimension == "fraction" and not q.unit else dimension,
-                                            "the published SD") and q.value < 0:
+                        if not self._ref_number(q, "number" if dimension == "fraction" and not q.unit else dimension,
+                                                "the published SD"):
+                            got["sd"] = None   # given, if wrongly: no second error about a missing SD
+                            ok = False
+                        elif isinstance(q, Quantity) and q.value < 0:
                             self.c.fail(f"a standard deviation cannot be negative, got {q}", q.span,
                                         expected="an SD of 0 or more")
                             ok = False
-                        got["sd"] = q
+                        else:
+                            got["sd"] = q
                     else:
                         n = None
                         if isinstance(q, ast.ScanRef):
@@ -1855,7 +1869,9 @@ class _Lowering(Transformer):
             elif line.kind == "condition":
                 ok &= self._ref_condition(name_tok, first, second, got)
             elif line.kind == "agree":
-                ok &= self._ref_rule(line.payload, dimension, measure, got)
+                if not self._ref_rule(line.payload, dimension, measure, got, line.span):
+                    got["agree"] = ("failed", None, line.span)   # its error is out; no "missing rule" too
+                    ok = False
             elif line.kind == "accept":
                 got["accepted"].extend(line.payload)
             elif line.kind == "memory":
@@ -1963,9 +1979,8 @@ class _Lowering(Transformer):
             got["conditions"].append(ast.ReferenceCondition(name=name, low=first, high=second, span=span))
         return ok
 
-    def _ref_rule(self, payload, dimension: str, measure: str, got: dict) -> bool:
+    def _ref_rule(self, payload, dimension: str | None, measure: str, got: dict, line_span: Span) -> bool:
         rule, q = payload
-        span = q.span if q is not None else None
         if rule == "sd":
             if q.value <= 0:
                 self.c.fail(f"the tolerance must be more than 0 SD, got {q.value:g}", q.span,
@@ -1974,7 +1989,10 @@ class _Lowering(Transformer):
             got["agree"] = ("sd", q, q.span)
             return True
         if rule == "range":
-            got["agree"] = ("range", None, None)
+            got["agree"] = ("range", None, line_span)
+            return True
+        if dimension is None:
+            got["agree"] = ("failed", None, line_span)   # unknown measure: reported already
             return True
         if isinstance(q, ast.ScanRef):
             self.c.fail(f"a tolerance cannot be scanned (@{q.name})", q.span, expected="a number with its unit")
@@ -2152,17 +2170,15 @@ class _Lowering(Transformer):
             if entry["dimension"] == "trace":
                 trace = "current" if modes.get(ref.cell) == "voltage clamp" else "voltage"
                 mode = "voltage clamp" if trace == "current" else "current clamp"
-                bad = [q for q in (ref.value, ref.sd, ref.low, ref.high, ref.tolerance)
-                       if isinstance(q, Quantity) and q.unit not in ("", "%", "sd") and q.dimension != trace]
+                # the published numbers are voltages or currents already (lowering); the tolerance only
+                # when it is absolute (a relative one is in %, an SD-rule one a plain count of SDs)
+                candidates = [ref.value, ref.sd, ref.low, ref.high] + ([ref.tolerance] if ref.rule == "absolute" else [])
+                bad = [q for q in candidates if isinstance(q, Quantity) and q.dimension != trace]
                 if bad:
                     self.c.fail(f"{ref.cell!r} is recorded in {mode}, so its {ref.measure} is a {trace}, got {bad[0]}",
                                 bad[0].span, expected=DIMENSIONS[trace],
                                 hint=f"give the published value in {DISPLAY[trace]}, or record {ref.cell!r} in the "
                                      "mode the paper used")
-                    continue
-                if isinstance(ref.value, Quantity) and not ref.value.unit:
-                    self.c.fail(f"the published {ref.measure} needs a unit", ref.value.span,
-                                expected=DIMENSIONS[trace], hint=f"e.g. {ref.value.value:g} {DISPLAY[trace]}")
                     continue
             kept.append(ref)
         return kept
