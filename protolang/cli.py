@@ -128,7 +128,7 @@ def cmd_run(args) -> int:
         print(f"reference  {what}{scan}: agreement {row['agreement']} ({row['reason']}; {row['source']})")
         failing += row["agreement"] != "yes"
     if failing:
-        print(f"{failing} of {len(comparison)} references do not agree")
+        print(f"{failing} of {len(comparison)} comparisons do not agree")
         if args.require_agreement:
             return 2
     return 0
