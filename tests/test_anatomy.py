@@ -89,7 +89,7 @@ def test_binomial_test_vectorised_and_hand_values():
 
 TAU_RISE, TAU_DECAY, SYN_DELAY = 1 * MS, 10 * MS, 1 * MS
 # t_peak = tr td / (td - tr) ln(td / tr) for a difference of exponentials (closed form,
-# /work/shared/REFERENCES.md A2): 2.558 ms after the onset, 3.558 ms after the spike.
+# REFERENCES.md, the team's table of check values kept beside the repository A2): 2.558 ms after the onset, 3.558 ms after the spike.
 T_PEAK = TAU_RISE * TAU_DECAY / (TAU_DECAY - TAU_RISE) * math.log(TAU_DECAY / TAU_RISE) + SYN_DELAY
 
 

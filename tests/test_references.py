@@ -562,7 +562,7 @@ def test_run_require_agreement_exit_status(tmp_path, capsys):
     status, out = _run(tmp_path, mixed, "mixed", "--require-agreement")
     assert status == 2
     printed = capsys.readouterr().out
-    assert "1 of 2 references do not agree" in printed
+    assert "1 of 2 comparisons do not agree" in printed
 
     connections = pd.read_csv(out / "tables" / "connections.csv")
     mine = connections[(connections["post"] == "post") & (connections["pre"] == "pre") & connections["connected"]]
@@ -586,7 +586,7 @@ def test_run_require_agreement_exit_status(tmp_path, capsys):
     # the same protocol without the flag: the disagreement is reported, the exit status is 0
     status, out = _run(tmp_path, mixed, "mixed_no_flag")
     assert status == 0
-    assert "1 of 2 references do not agree" in capsys.readouterr().out
+    assert "1 of 2 comparisons do not agree" in capsys.readouterr().out
     assert (out / "tables" / "comparison.csv").exists()
 
     # every reference agrees: 0 with the flag
@@ -594,3 +594,19 @@ def test_run_require_agreement_exit_status(tmp_path, capsys):
     assert status == 0
     assert "do not agree" not in capsys.readouterr().out
     assert set(pd.read_csv(out / "tables" / "comparison.csv")["agreement"]) == {"yes"}
+
+
+def test_F_counts_only_fits_that_resolved_F():
+    # A depression-only refit reports F = 0 because the train could not resolve F: that is not a
+    # measured F of 0 ms, so only the 'depression and facilitation' fits count (hand-computed mean
+    # of the two resolved values: (100 + 300) / 2 = 200 ms).
+    plasticity = pd.DataFrame({
+        "post": ["post"] * 4, "pre": ["pre"] * 4, "scope": ["connection"] * 4,
+        "tm_converged": [True, True, True, False],
+        "tm_model": ["depression and facilitation", "depression only", "depression and facilitation",
+                     "depression and facilitation"],
+        "tm_F_ms": [100.0, 0.0, 300.0, 50.0],
+    })
+    (row,) = (r for _, r in compare([_plan("F", "post", "pre", unit="ms", value=200.0, rule="absolute",
+                                           tolerance=1.0)], {"plasticity": plasticity}).iterrows())
+    assert row["model_n"] == 2 and row["model_mean"] == 200.0 and row["agreement"] == "yes"

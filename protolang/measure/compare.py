@@ -96,6 +96,9 @@ def model_values(ref: dict, tables: dict[str, pd.DataFrame]) -> np.ndarray:
         rows = table[(table["post"] == ref["cell"]) & (table["pre"] == ref["source_cell"])]
         if entry["table"] == "plasticity":
             rows = rows[(rows["scope"] == "connection") & rows["tm_converged"].astype(bool)]
+            if measure == "F" and "tm_model" in rows.columns:
+                # a depression-only refit sets F = 0 because the train could not resolve F: not a measured 0
+                rows = rows[rows["tm_model"] == "depression and facilitation"]
         elif measure == "probability":
             return rows["connected"].astype(float).to_numpy()
         else:

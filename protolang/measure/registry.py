@@ -184,7 +184,8 @@ REFERENCE_MEASURES: dict[str, dict] = {
     "D": {"collectors": ("plasticity",), "table": "plasticity", "column": "tm_D_ms", "dimension": "time",
           "source": True, "description": "Tsodyks-Markram recovery time constant D, per converged connection fit"},
     "F": {"collectors": ("plasticity",), "table": "plasticity", "column": "tm_F_ms", "dimension": "time",
-          "source": True, "description": "Tsodyks-Markram facilitation time constant F, per converged connection fit"},
+          "source": True, "description": "Tsodyks-Markram facilitation time constant F, per converged connection fit "
+                         "that resolved F (depression-only refits, F = 0, are left out)"},
     "rest": {"collectors": ("passive",), "table": "cells", "column": "rest_mV", "dimension": "voltage",
              "source": False, "description": "resting potential, per cell"},
     "input_resistance": {"collectors": ("passive",), "table": "cells", "column": "input_resistance_MOhm",

@@ -42,7 +42,7 @@ def write_comparison_figures(fig_dir: Path, references: list[dict], tables: dict
             sd = float(np.std(values, ddof=1)) if values.size > 1 else 0.0
             ax.errorbar([0.35], [values.mean()], yerr=[sd], fmt="o", color="tab:blue", capsize=5)
         else:
-            ax.text(0.0, 0.5, "no model values", transform=ax.get_yaxis_transform(), ha="left", color="tab:red")
+            ax.text(0.27, 0.5, "no model values", transform=ax.transAxes, ha="center", va="center", color="tab:red")
         if ref["value"] is not None:
             label = "published" + (f" (n = {ref['n']})" if ref["n"] is not None else "")
             yerr = [ref["sd"]] if ref["sd"] is not None else None
