@@ -30,7 +30,7 @@ PREDICTION_COLUMNS = [
     "pathway", "pre_class", "post_class", "status", "n_pairs_tested", "n_pairs_connected", "probability",
     "probability_low", "probability_high", "rule_probability", "n_connections", "amplitude_mV", "amplitude_sd_mV",
     "cv", "failure_rate", "latency_ms", "rise_20_80_ms", "decay_tau_ms", "ppr", "recovery_ratio",
-    "tm_U", "tm_D_ms", "tm_F_ms", "tm_class", "tm_converged_fraction", "reference_backed", "references_agreeing",
+    "tm_U", "tm_D_ms", "tm_F_ms", "tm_model", "tm_class", "tm_converged_fraction", "reference_backed", "references_agreeing",
     "references", "holding_mV", "protocol_file",
 ]
 # Inhibitory when every receptor of the pathway reverses below this (V).
@@ -142,8 +142,11 @@ def prediction_row(pathway, tables: dict, plan, holding_mV: float) -> dict:
     if fits is not None and not fits.empty:
         pooled = fits[fits["scope"] == "pathway"]
         single = fits[fits["scope"] == "connection"]
+        model = str(pooled["tm_model"].iloc[0]) if len(pooled) and "tm_model" in pooled.columns else ""
         row.update({"tm_U": _value(pooled, "tm_U"), "tm_D_ms": _value(pooled, "tm_D_ms"),
-                    "tm_F_ms": _value(pooled, "tm_F_ms"),
+                    # a depression-only fit's F = 0 says the train could not resolve F: leave it empty here
+                    "tm_F_ms": math.nan if model == "depression only" else _value(pooled, "tm_F_ms"),
+                    "tm_model": model,
                     "tm_class": str(pooled["tm_class"].iloc[0]) if len(pooled) else "",
                     "tm_converged_fraction": float(single["tm_converged"].mean()) if len(single) else math.nan})
     return row

@@ -59,7 +59,8 @@ def test_prediction_row_from_hand_built_tables():
     })
     fits = pd.DataFrame({"scope": ["connection", "connection", "pathway"], "tm_U": [0.4, np.nan, 0.5],
                          "tm_D_ms": [500.0, np.nan, 600.0], "tm_F_ms": [10.0, np.nan, 20.0],
-                         "tm_class": ["", "", "depressing"], "tm_converged": [True, False, True]})
+                         "tm_class": ["", "", "depressing"], "tm_converged": [True, False, True],
+                         "tm_model": ["depression and facilitation"] * 3})
     row = prediction_row(_Pathway(), {"connections": conn, "plasticity": fits}, _Plan(), -70.0)
     # hand-computed: probe pairs 1 of 4 connected; post's connected pairs are the first three
     assert row["n_pairs_tested"] == 4 and row["n_pairs_connected"] == 1 and row["probability"] == 0.25
@@ -78,6 +79,11 @@ def test_prediction_row_from_hand_built_tables():
     assert row["ppr"] == pytest.approx(0.7)
     assert (row["tm_U"], row["tm_D_ms"], row["tm_F_ms"], row["tm_class"]) == (0.5, 600.0, 20.0, "depressing")
     assert row["tm_converged_fraction"] == 0.5
+    # a depression-only pooled fit leaves F empty: its F = 0 is no measurement
+    fits.loc[2, "tm_model"] = "depression only"
+    fits.loc[2, "tm_F_ms"] = 0.0
+    row = prediction_row(_Pathway(), {"connections": conn, "plasticity": fits}, _Plan(), -70.0)
+    assert math.isnan(row["tm_F_ms"]) and row["tm_model"] == "depression only" and row["tm_D_ms"] == 600.0
 
 
 def test_backing_maps_comparison_rows_to_pathways():
