@@ -143,29 +143,17 @@ class Experiment:
             Result with ``tables`` (dict of DataFrames) and ``recordings``.
         """
         say = progress or (lambda msg: None)
-        if out is not None and Path(out).exists() and not force:
-            raise error(f"run folder {str(out)!r} already exists", None,
-                        expected="a new folder name", hint="choose another --out or pass --force")
-        from .engine import run_plan
-        from .measure.collect import collect
-
+        _refuse_existing(out, force)
         timings = {"plan_s": 0.0, "simulate_s": 0.0, "collect_s": 0.0}
         t0 = time.perf_counter()
         points = self.points()
         # resolve every point first: a bad point fails before any simulation
         plans = []
-        for k, (values, protocol) in enumerate(points):
+        for k in range(len(points)):
             t = time.perf_counter()
             plans.append(self.plan(k))
             timings["plan_s"] += time.perf_counter() - t
-        # the rheobase collector simulates test steps of its own: refuse bad ones before any run
-        searches = [any(m.collector == "rheobase" for m in plan.measures) for plan in plans]
-        if any(searches):
-            from .measure.rheobase import check_rheobase
-
-            for plan, wanted in zip(plans, searches):
-                if wanted:
-                    check_rheobase(plan)
+        _check_searches(plans)
         for note in plans[0].notes:
             say(note)
         say(f"layout: {plans[0].layout}: {plans[0].layout_reason}")
@@ -174,23 +162,7 @@ class Experiment:
             where = ""
             if values:
                 where = f"point {k + 1}/{len(points)} (" + ", ".join(f"@{n} = {q}" for n, q in values.items()) + "): "
-            say(f"{where}simulating {plan.n_repeat} repeats x {plan.n_sweeps} sweeps "
-                f"({plan.n_replicas} replicas, {plan.sweep_length * 1e3:g} ms each)")
-            t1 = time.perf_counter()
-            recordings = run_plan(plan, target=target, progress=say)
-            timings["simulate_s"] += time.perf_counter() - t1
-            rheobase = None
-            if searches[k]:
-                from .measure.rheobase import measure_rheobase
-
-                say(f"{where}searching the rheobase")
-                t3 = time.perf_counter()
-                rheobase = measure_rheobase(plan, run_plan, target=target, progress=say)
-                timings["rheobase_s"] = timings.get("rheobase_s", 0.0) + time.perf_counter() - t3
-            say(f"{where}collecting tables")
-            t2 = time.perf_counter()
-            tables = collect(plan, recordings, rheobase=rheobase)
-            timings["collect_s"] += time.perf_counter() - t2
+            recordings, tables = _simulate_and_collect(plan, target, say, timings, where)
             runs.append(PointRun(values=values, plan=plan, recordings=recordings, tables=tables))
         prov = provenance(self, plans[0], runs[0].recordings, timings)
         if self.protocol.scans:
@@ -208,6 +180,85 @@ class Experiment:
             say("writing run folder")
             result.out_dir, result.paths = _write_atomically(Path(out), result, force)
         return result
+
+    def run_point(self, point: int, out: str | os.PathLike | None = None, *, target: str = "auto",
+                  progress: Callable[[str], None] | None = None, force: bool = False, plan=None) -> Result:
+        """Run one scan point (0-based) as a run of its own: the batch runner's unit of work.
+
+        The run folder has the layout of an unscanned run; its tables carry no ``scan_*`` columns
+        and its provenance records the point and its values (``scan_point``, ``scan``).
+
+        Args:
+            point: the scan point, 0-based (0 for an unscanned protocol).
+            out: run folder to create, written atomically.
+            target: Brian2 code-generation target.
+            progress: callable receiving one line per stage.
+            force: replace an existing run folder.
+            plan: the point's plan if the caller resolved it already.
+
+        Returns:
+            The Result of that point.
+        """
+        say = progress or (lambda msg: None)
+        _refuse_existing(out, force)
+        values = self.points()[point][0]
+        timings = {"plan_s": 0.0, "simulate_s": 0.0, "collect_s": 0.0}
+        t0 = time.perf_counter()
+        if plan is None:
+            plan = self.plan(point)
+        timings["plan_s"] = time.perf_counter() - t0
+        _check_searches([plan])
+        recordings, tables = _simulate_and_collect(plan, target, say, timings)
+        prov = provenance(self, plan, recordings, timings)
+        prov["scan_point"] = point + 1
+        prov["scan"] = {n: str(q) for n, q in values.items()}
+        run = PointRun(values={}, plan=plan, recordings=recordings, tables=tables)
+        result = Result(plan=plan, recordings=recordings, tables=tables, provenance=prov, points=[run])
+        prov["wall_time_s"] = time.perf_counter() - t0
+        if out is not None:
+            result.out_dir, result.paths = _write_atomically(Path(out), result, force)
+        return result
+
+
+def _refuse_existing(out, force: bool) -> None:
+    if out is not None and Path(out).exists() and not force:
+        raise error(f"run folder {str(out)!r} already exists", None,
+                    expected="a new folder name", hint="choose another --out or pass --force")
+
+
+def _check_searches(plans: list) -> None:
+    """The rheobase collector simulates test steps of its own: refuse bad ones before any run."""
+    if any(m.collector == "rheobase" for plan in plans for m in plan.measures):
+        from .measure.rheobase import check_rheobase
+
+        for plan in plans:
+            if any(m.collector == "rheobase" for m in plan.measures):
+                check_rheobase(plan)
+
+
+def _simulate_and_collect(plan, target: str, say: Callable[[str], None], timings: dict, where: str = ""):
+    """Simulate one plan, run its rheobase search if it has one, collect its tables; add to ``timings``."""
+    from .engine import run_plan
+    from .measure.collect import collect
+
+    say(f"{where}simulating {plan.n_repeat} repeats x {plan.n_sweeps} sweeps "
+        f"({plan.n_replicas} replicas, {plan.sweep_length * 1e3:g} ms each)")
+    t1 = time.perf_counter()
+    recordings = run_plan(plan, target=target, progress=say)
+    timings["simulate_s"] += time.perf_counter() - t1
+    rheobase = None
+    if any(m.collector == "rheobase" for m in plan.measures):
+        from .measure.rheobase import measure_rheobase
+
+        say(f"{where}searching the rheobase")
+        t3 = time.perf_counter()
+        rheobase = measure_rheobase(plan, run_plan, target=target, progress=say)
+        timings["rheobase_s"] = timings.get("rheobase_s", 0.0) + time.perf_counter() - t3
+    say(f"{where}collecting tables")
+    t2 = time.perf_counter()
+    tables = collect(plan, recordings, rheobase=rheobase)
+    timings["collect_s"] += time.perf_counter() - t2
+    return recordings, tables
 
 
 def _write_atomically(out: Path, result: Result, force: bool):
