@@ -1,4 +1,4 @@
-"""Command line: a thin layer over the public API (check, parse, plan, run, predict).
+"""Command line: a thin layer over the public API (check, parse, plan, run, predict, batch, results).
 
 User errors print as ``file:line:col: error: ...`` and exit with status 1; there is never a
 traceback for a user's mistake. ``run --require-agreement`` exits with status 2 when a published
@@ -166,6 +166,27 @@ def cmd_predict(args) -> int:
     return 0
 
 
+def cmd_batch(args) -> int:
+    from .batch.runner import batch
+    from .language.errors import error
+
+    if args.jobs is not None and args.jobs < 1:
+        raise error(f"-j must be at least 1, got {args.jobs}", None, expected="a number of worker processes")
+    try:
+        summary = batch(args.paths, args.results, jobs=args.jobs, scheduler=args.scheduler, fresh=args.fresh,
+                        target=args.target, quiet=args.quiet)
+    except KeyboardInterrupt:
+        _err("interrupted: finished runs are kept and indexed; the same command resumes with the rest")
+        return 130
+    print(f"batch {summary.batch}: {summary.total} runs: {summary.ok} ok, {summary.cached} cached, "
+          f"{summary.failed} failed, {summary.crashed} crashed, {summary.invalid} invalid "
+          f"({summary.wall_s:.1f} s); results in {args.results}")
+    for u in summary.units:
+        if u.status in ("failed", "crashed", "invalid") and u.error:
+            print(f"  {u.status}: {u.label}: {u.error.splitlines()[0]}")
+    return 0 if summary.all_ok else 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(prog="protolang", description="In-silico paired-recording protocols on Brian2.")
     sub = ap.add_subparsers(dest="command", required=True)
@@ -211,6 +232,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_predict)
+    p = sub.add_parser("batch", help="run every protocol (and scan point) under files and folders, cached and indexed")
+    p.add_argument("paths", nargs="+", help="protocol files or folders (searched for *.protocol)")
+    p.add_argument("--results", default="results", help="results folder (created or reused; default: results)")
+    p.add_argument("-j", "--jobs", type=int, default=None, help="local worker processes (default: all cores)")
+    p.add_argument("--scheduler", default=None, help="address of a Dask distributed scheduler to run on instead")
+    p.add_argument("--fresh", action="store_true", help="ignore the cache: run everything again")
+    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython"])
+    p.add_argument("--quiet", action="store_true", help="no progress output (for CI logs)")
+    p.set_defaults(func=cmd_batch)
+    from .batch.results import add_results_parser
+
+    add_results_parser(sub)
     return ap
 
 
