@@ -25,6 +25,7 @@ bench: $(STAMP)
 	$(PY) bench/paired_train.py
 	$(PY) bench/characterise.py
 	$(PY) bench/embedded_network.py
+	$(PY) bench/batch_library.py
 
 clean:
 	rm -rf $(VENV) .cache runs

@@ -219,3 +219,51 @@ def test_unreachable_scheduler_is_a_quick_clear_error():
     with pytest.raises(ProtocolError, match="cannot reach the Dask scheduler"):
         DaskPool("tcp://127.0.0.1:9")
     assert time.perf_counter() - t < 15
+
+
+class _Tty:
+    """A terminal-like stream that keeps what was written."""
+
+    def __init__(self):
+        self.text = ""
+
+    def isatty(self):
+        return True
+
+    def write(self, s):
+        self.text += s
+
+    def flush(self):
+        pass
+
+
+def test_progress_bar_counts_failures_and_eta_and_quiet_mode():
+    import io
+
+    from protolang.batch.runner import Progress
+    from protolang.batch.units import Unit
+
+    def unit(status, error=None):
+        return Unit(protocol="/x/a.protocol", point=0, n_points=1, title="a", params={}, pre_key="p",
+                    status=status, error=error)
+
+    tty = _Tty()
+    bar = Progress(4, stream=tty)
+    bar.advance(unit("cached"), cached=True)
+    bar.advance(unit("ok"), wall_s=2.0)
+    bar.advance(unit("failed", "boom\nmore"), wall_s=1.0)
+    last = tty.text.split("\r")[-1]
+    assert "3/4 runs" in last and "1 cached" in last and "1 failed" in last and "ETA" in last
+
+    log = io.StringIO()
+    lines = Progress(2, stream=log)
+    lines.advance(unit("ok"), wall_s=1.0)
+    lines.advance(unit("failed", "boom\nmore"), wall_s=1.0)
+    assert log.getvalue().splitlines() == ["[1/2] ok: a.protocol", "[2/2] failed: a.protocol (boom)"]
+
+    quiet = io.StringIO()
+    silent = Progress(1, stream=quiet, quiet=True)
+    silent.advance(unit("failed", "boom"))
+    silent.note("something")
+    silent.finish()
+    assert quiet.getvalue() == ""
