@@ -188,9 +188,10 @@ def batch(paths: list[str], results: str | os.PathLike, *, jobs: int | None = No
         distinct: dict[str, list[Unit]] = {}
         for u in to_run:
             distinct.setdefault(u.key, []).append(u)
+        ordered = sorted(distinct.items(), key=lambda kv: -kv[1][0].extra.get("cost", 0.0))
         tasks = [{"key": key, "protocol": group[0].protocol, "point": group[0].point,
                   "out": str(_run_folder(results, key)), "target": target}
-                 for key, group in distinct.items()]
+                 for key, group in ordered]
         summary.ran = len(tasks)
 
         def on_start(task: dict) -> None:

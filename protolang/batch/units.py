@@ -125,6 +125,18 @@ def plan_key(plan, target: str) -> str:
     return _digest({"plan": _stable(plan.to_dict()), "engine": engine_settings(target)})
 
 
+def estimated_cost(plan) -> float:
+    """A rough relative cost of simulating a plan (cells x simulated seconds), for ordering runs.
+
+    Handing out the longest runs first keeps workers from idling at the end of a batch (the
+    longest-processing-time rule of list scheduling).
+    """
+    cells = sum(len(r.cell_ids) for r in plan.roles)
+    if plan.network is not None:
+        cells += plan.network.to_plain().get("cells", 0) * plan.n_repeat
+    return float(cells * plan.n_sweeps * plan.sweep_length)
+
+
 def resolve_units(units: list[Unit], target: str) -> dict[str, str]:
     """Check and plan every unit of one protocol file; set ``key`` or an ``invalid`` status.
 
@@ -144,7 +156,9 @@ def resolve_units(units: list[Unit], target: str) -> dict[str, str]:
     out = {}
     for u in units:
         try:
-            u.key = plan_key(exp.plan(u.point), target)
+            plan = exp.plan(u.point)
+            u.key = plan_key(plan, target)
+            u.extra["cost"] = estimated_cost(plan)
             out[u.pre_key] = u.key
         except ProtocolError as exc:
             u.status, u.error = "invalid", "\n".join(render(d) for d in exc.diagnostics)
