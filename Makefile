@@ -5,6 +5,7 @@ PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed-stamp
 # Brian2's compile cache and scratch files stay inside the checkout.
 export CYTHON_CACHE_DIR := $(CURDIR)/.cache/cython
+export PROTOLANG_STANDALONE_CACHE := $(CURDIR)/.cache/standalone
 export OMP_NUM_THREADS := 1
 
 .PHONY: demo test bench clean
@@ -26,6 +27,7 @@ bench: $(STAMP)
 	$(PY) bench/characterise.py
 	$(PY) bench/embedded_network.py
 	$(PY) bench/batch_library.py
+	$(PY) bench/scan_standalone.py
 
 clean:
 	rm -rf $(VENV) .cache runs

@@ -22,6 +22,8 @@ from .language import parse
 from .language.errors import ProtocolError, error, remember_source
 
 __version__ = "0.1.0"
+# Code-generation target that compiles one C++ binary per network structure (see engine/standalone.py).
+STANDALONE = "standalone"
 
 
 @dataclass
@@ -157,12 +159,13 @@ class Experiment:
         for note in plans[0].notes:
             say(note)
         say(f"layout: {plans[0].layout}: {plans[0].layout_reason}")
+        compiled = _standalone_recordings(plans, say, timings) if target == STANDALONE else [None] * len(plans)
         runs: list[PointRun] = []
         for k, ((values, _), plan) in enumerate(zip(points, plans)):
             where = ""
             if values:
                 where = f"point {k + 1}/{len(points)} (" + ", ".join(f"@{n} = {q}" for n, q in values.items()) + "): "
-            recordings, tables = _simulate_and_collect(plan, target, say, timings, where)
+            recordings, tables = _simulate_and_collect(plan, target, say, timings, where, recordings=compiled[k])
             runs.append(PointRun(values=values, plan=plan, recordings=recordings, tables=tables))
         prov = provenance(self, plans[0], runs[0].recordings, timings)
         if self.protocol.scans:
@@ -208,7 +211,8 @@ class Experiment:
             plan = self.plan(point)
         timings["plan_s"] = time.perf_counter() - t0
         _check_searches([plan])
-        recordings, tables = _simulate_and_collect(plan, target, say, timings)
+        compiled = _standalone_recordings([plan], say, timings)[0] if target == STANDALONE else None
+        recordings, tables = _simulate_and_collect(plan, target, say, timings, recordings=compiled)
         prov = provenance(self, plan, recordings, timings)
         prov["scan_point"] = point + 1
         prov["scan"] = {n: str(q) for n, q in values.items()}
@@ -236,23 +240,53 @@ def _check_searches(plans: list) -> None:
                 check_rheobase(plan)
 
 
-def _simulate_and_collect(plan, target: str, say: Callable[[str], None], timings: dict, where: str = ""):
-    """Simulate one plan, run its rheobase search if it has one, collect its tables; add to ``timings``."""
+def standalone_cache() -> Path:
+    """Where compiled standalone projects are kept: ``$PROTOLANG_STANDALONE_CACHE`` or ~/.cache/protolang/standalone."""
+    return Path(os.environ.get("PROTOLANG_STANDALONE_CACHE", Path.home() / ".cache" / "protolang" / "standalone"))
+
+
+def _standalone_recordings(plans: list, say: Callable[[str], None], timings: dict) -> list:
+    """Simulate plans with Brian2's C++ standalone device: one compiled binary per network structure,
+    run once per plan with that plan's numbers (a scan over calcium or amplitudes compiles once)."""
+    from .engine.standalone import run_points_standalone, structure_key
+
+    t = time.perf_counter()
+    groups: dict[str, list[int]] = {}
+    for k, plan in enumerate(plans):
+        groups.setdefault(structure_key(plan), []).append(k)
+    out: list = [None] * len(plans)
+    for key, members in groups.items():
+        say(f"standalone: {len(members)} point(s) share one compiled network ({key[:12]})")
+        for k, rec in zip(members, run_points_standalone([plans[k] for k in members], standalone_cache(),
+                                                         progress=say)):
+            out[k] = rec
+    timings["simulate_s"] += time.perf_counter() - t
+    timings["standalone_binaries"] = len(groups)
+    return out
+
+
+def _simulate_and_collect(plan, target: str, say: Callable[[str], None], timings: dict, where: str = "",
+                          recordings=None):
+    """Simulate one plan (unless ``recordings`` are given), run its rheobase search if it has one,
+    collect its tables; add to ``timings``."""
     from .engine import run_plan
     from .measure.collect import collect
 
-    say(f"{where}simulating {plan.n_repeat} repeats x {plan.n_sweeps} sweeps "
-        f"({plan.n_replicas} replicas, {plan.sweep_length * 1e3:g} ms each)")
-    t1 = time.perf_counter()
-    recordings = run_plan(plan, target=target, progress=say)
-    timings["simulate_s"] += time.perf_counter() - t1
+    if recordings is None:
+        say(f"{where}simulating {plan.n_repeat} repeats x {plan.n_sweeps} sweeps "
+            f"({plan.n_replicas} replicas, {plan.sweep_length * 1e3:g} ms each)")
+        t1 = time.perf_counter()
+        recordings = run_plan(plan, target=target, progress=say)
+        timings["simulate_s"] += time.perf_counter() - t1
     rheobase = None
     if any(m.collector == "rheobase" for m in plan.measures):
         from .measure.rheobase import measure_rheobase
 
         say(f"{where}searching the rheobase")
         t3 = time.perf_counter()
-        rheobase = measure_rheobase(plan, run_plan, target=target, progress=say)
+        # the search simulates many small test networks: a runtime target suits it better
+        search_target = "auto" if target == STANDALONE else target
+        rheobase = measure_rheobase(plan, run_plan, target=search_target, progress=say)
         timings["rheobase_s"] = timings.get("rheobase_s", 0.0) + time.perf_counter() - t3
     say(f"{where}collecting tables")
     t2 = time.perf_counter()

@@ -206,8 +206,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("run", help="simulate a protocol and write its run folder")
     p.add_argument("file")
     p.add_argument("--out", required=True, help="run folder to create")
-    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython"],
-                   help="Brian2 code-generation target (auto: cython when a compiler works)")
+    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython", "standalone"],
+                   help="Brian2 code-generation target (auto: cython when a compiler works; standalone: one compiled C++ binary per network structure, re-run per scan point)")
     p.add_argument("--force", action="store_true", help="replace an existing run folder")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.add_argument("--require-agreement", action="store_true",
@@ -228,7 +228,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="bootstrap resamples behind the fitted U, D, F intervals in each run folder (default 0)")
     p.add_argument("--replays", nargs="*", metavar="PATH",
                    help="replay protocols, folders of them, or their run folders: their references back rows")
-    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython"])
+    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython", "standalone"])
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_predict)
@@ -238,7 +238,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-j", "--jobs", type=int, default=None, help="local worker processes (default: all cores)")
     p.add_argument("--scheduler", default=None, help="address of a Dask distributed scheduler to run on instead")
     p.add_argument("--fresh", action="store_true", help="ignore the cache: run everything again")
-    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython"])
+    p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython", "standalone"])
     p.add_argument("--quiet", action="store_true", help="no progress output (for CI logs)")
     p.set_defaults(func=cmd_batch)
     from .batch.results import add_results_parser

@@ -8,6 +8,7 @@ import threading
 import time
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 import yaml
@@ -267,3 +268,24 @@ def test_progress_bar_counts_failures_and_eta_and_quiet_mode():
     silent.note("something")
     silent.finish()
     assert quiet.getvalue() == ""
+
+
+@pytest.mark.brian2
+@pytest.mark.slow
+def test_standalone_target_compiles_once_per_scan_and_matches_the_runtime_target(tmp_path):
+    from protolang.api import load
+
+    lib, _ = _library(tmp_path)
+    scanned = lib / "sub" / "basket.protocol"
+    compiled = load(scanned).run(tmp_path / "sa", target="standalone")
+    runtime = load(scanned).run(tmp_path / "np", target="numpy")
+    # both scan points (1.5 and 2 nA) share one compiled network: the amplitude is a run-time number
+    assert compiled.provenance["timings"]["standalone_binaries"] == 1
+    assert compiled.provenance["engine"]["target"] == "cpp_standalone"
+    a = compiled.tables["connections"]["amplitude_mean_mV"].to_numpy()
+    b = runtime.tables["connections"]["amplitude_mean_mV"].to_numpy()
+    # deterministic release: the same numbers up to floating-point order (numpy vs C++)
+    np.testing.assert_allclose(a, b, rtol=1e-6)
+    # the batch runner takes the same target, one run folder per point
+    summary = batch([str(scanned)], tmp_path / "results", jobs=1, target="standalone", quiet=True)
+    assert summary.ok == 2

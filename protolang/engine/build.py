@@ -236,13 +236,51 @@ class RoleBlock:
 
 
 @dataclass
+class Assignment:
+    """One set of plain numbers the builder wrote into a Brian2 object: a state variable of a
+    group or Synapses object (``variable``), or the table of a TimedArray (``variable ==
+    "values"``). ``target`` is the Brian2 object itself."""
+
+    owner: str
+    variable: str
+    values: np.ndarray
+    target: Any = field(default=None, repr=False, compare=False)
+
+
+#: Ledger name of a TimedArray's table.
+TIMED_ARRAY_VALUES = "values"
+
+
+def assign(ledger: list[Assignment] | None, target: Any, variable: str, values: Any) -> None:
+    """Set ``target.<variable>`` to plain SI numbers and record the values in ``ledger``.
+
+    Every number the builder puts into a group's or a Synapses object's state passes here, so
+    the ledger lists everything that may change between plans of one network structure (the
+    compile-once path of :mod:`protolang.engine.standalone` hands them to the compiled binary).
+    """
+    setattr(target, variable + "_", values)
+    if ledger is not None:
+        # the builder never changes an array after handing it over, so no copy is needed
+        ledger.append(Assignment(target.name, variable, np.asarray(values), target))
+
+
+def timed_array(b2: Any, ledger: list[Assignment] | None, name: str, values: np.ndarray, dt: float) -> Any:
+    """A TimedArray of plain numbers at time step ``dt`` (s), recorded in ``ledger``."""
+    table = b2.TimedArray(values, dt=dt * b2.second, name=name)
+    if ledger is not None:
+        ledger.append(Assignment(name, TIMED_ARRAY_VALUES, np.asarray(values), table))
+    return table
+
+
+@dataclass
 class Built:
     """The network and the handles needed to read it back.
 
     Roles of one kind may share a Brian2 group (:func:`cell_groups`): ``blocks`` says where each
     role's cells are, ``groups`` which roles a group holds. ``cells``, ``spike_monitors`` and
     ``trace_monitors`` map every role to its group's object (shared by merged roles), and
-    ``trace_rows`` gives the role's rows in its trace monitor.
+    ``trace_rows`` gives the role's rows in its trace monitor. ``ledger`` (built with
+    ``ledger=True``) lists every array of numbers written into the network (:func:`assign`).
     """
 
     network: Any
@@ -265,6 +303,7 @@ class Built:
     notes: list[str] = field(default_factory=list)
     population: Any = None                                           # embedded network's NeuronGroup
     population_spikes: Any = None                                    # and its SpikeMonitor
+    ledger: list[Assignment] | None = None                           # numbers written, if asked
 
 
 def _per_repeat(plan: Plan, values: Any, what: str) -> np.ndarray:
@@ -707,39 +746,39 @@ def _tm_arrays(plan: Plan, pre: np.ndarray, post: np.ndarray, which: np.ndarray,
 
 
 def _tm_object(b2: Any, name: str, source: Any, target: Any, arrays: SynapseArrays,
-               release_var: str | None = None) -> Any:
+               release_var: str | None = None, ledger: list[Assignment] | None = None) -> Any:
     """The Brian2 Synapses object of ``arrays`` (which must hold at least one synapse)."""
     suffixes = list(arrays.q)
     group = b2.Synapses(source, target, model=models.synapse_model(arrays.stochastic, suffixes),
                         on_pre=models.synapse_on_pre(arrays.stochastic, suffixes, release_var),
                         namespace={}, name=name)
     group.connect(i=arrays.pre, j=arrays.post)
-    group.U_ = arrays.U
-    group.rate_D_ = arrays.rate_D
-    group.rate_F_ = arrays.rate_F
-    group.u_fac_ = 0.0
-    group.t_last_ = 0.0
+    assign(ledger, group, "U", arrays.U)
+    assign(ledger, group, "rate_D", arrays.rate_D)
+    assign(ledger, group, "rate_F", arrays.rate_F)
+    assign(ledger, group, "u_fac", 0.0)
+    assign(ledger, group, "t_last", 0.0)
     if arrays.stochastic:
-        group.available_ = 1.0
+        assign(ledger, group, "available", 1.0)
     else:
-        group.R_ = 1.0
-        group.sites_ = arrays.sites
+        assign(ledger, group, "R", 1.0)
+        assign(ledger, group, "sites", arrays.sites)
     for suffix, q in arrays.q.items():
-        setattr(group, f"q_{suffix}_", q)
-    group.delay_ = arrays.delay
+        assign(ledger, group, f"q_{suffix}", q)
+    assign(ledger, group, "delay", arrays.delay)
     return group
 
 
 def _tm_synapses(b2: Any, plan: Plan, name: str, source: Any, target: Any, pre: np.ndarray,
                  post: np.ndarray, which: np.ndarray, values: dict[str, np.ndarray],
                  receptors: dict[str, float], stochastic: bool, suffix_of: dict[str, str],
-                 release_var: str | None = None) -> tuple[Any, int]:
+                 release_var: str | None = None, ledger: list[Assignment] | None = None) -> tuple[Any, int]:
     """Tsodyks-Markram release synapses ``pre[k] -> post[k]`` with the parameters at ``which[k]``
     of ``values``; one synapse per release site when ``stochastic``. (None, 0) if there are none."""
     arrays = _tm_arrays(plan, pre, post, which, values, receptors, stochastic, suffix_of)
     if arrays.size == 0:
         return None, 0
-    return _tm_object(b2, name, source, target, arrays, release_var), arrays.size
+    return _tm_object(b2, name, source, target, arrays, release_var, ledger), arrays.size
 
 
 def _hh_cells(plan: Plan, role: RolePlan, params: dict[str, np.ndarray], hold: np.ndarray, clamp: bool,
@@ -813,24 +852,25 @@ class StimulusTables:
     namespace: dict[str, Any]
 
 
-def _stimulus_tables(b2: Any, plan: Plan, layout: Layout) -> StimulusTables:
+def _stimulus_tables(b2: Any, plan: Plan, layout: Layout,
+                     ledger: list[Assignment] | None = None) -> StimulusTables:
     lib = stimulus_library(plan, layout)
     namespace: dict[str, Any] = {"sweep_interval": layout.interval * b2.second}
     column_slot: dict[str, int] = {}
     scale_slot: dict[str, int] = {}
     if lib is not None:
-        namespace["stim_library"] = b2.TimedArray(lib.values, dt=layout.dt * b2.second, name="stim_library")
+        namespace["stim_library"] = timed_array(b2, ledger, "stim_library", lib.values, layout.dt)
         if layout.kind == "sequential":
             varying = [r for r, cols in lib.columns.items() if np.any(cols != cols[0])]
             if varying:
                 table = np.stack([lib.columns[r] for r in varying], axis=1).astype(float)
                 column_slot = {r: k for k, r in enumerate(varying)}
-                namespace["sweep_columns"] = b2.TimedArray(table, dt=layout.dt * b2.second, name="sweep_columns")
+                namespace["sweep_columns"] = timed_array(b2, ledger, "sweep_columns", table, layout.dt)
             if lib.scales:
                 table = np.concatenate([lib.scales[r].T for r in lib.scales], axis=1)
                 offsets = np.cumsum([0] + [lib.scales[r].shape[0] for r in lib.scales])
                 scale_slot = {r: int(o) for r, o in zip(lib.scales, offsets)}
-                namespace["sweep_scale"] = b2.TimedArray(table, dt=layout.dt * b2.second, name="sweep_scale")
+                namespace["sweep_scale"] = timed_array(b2, ledger, "sweep_scale", table, layout.dt)
     return StimulusTables(lib, column_slot, scale_slot, namespace)
 
 
@@ -1046,7 +1086,8 @@ def cell_groups(plan: Plan, specs: dict[str, CellSpec], names: dict[tuple[str, s
     return out
 
 
-def _neuron_group(b2: Any, name: str, specs: list[CellSpec], layout: Layout) -> Any:
+def _neuron_group(b2: Any, name: str, specs: list[CellSpec], layout: Layout,
+                  ledger: list[Assignment] | None = None) -> Any:
     """One NeuronGroup holding the cells of ``specs`` (one key) role after role."""
     first = specs[0]
     for spec in specs[1:]:
@@ -1060,9 +1101,9 @@ def _neuron_group(b2: Any, name: str, specs: list[CellSpec], layout: Layout) -> 
             continue
         values = (first.per_cell[var] if len(specs) == 1
                   else np.concatenate([spec.per_cell[var] for spec in specs]))
-        setattr(group, var + "_", values)
+        assign(ledger, group, var, values)
     for var, value in first.shared.items():
-        setattr(group, var + "_", value)
+        assign(ledger, group, var, value)
     if first.update:
         group.run_regularly(first.update, when="start", name=f"{name}_conductance")
     for s in first.release_vars:
@@ -1090,7 +1131,7 @@ def synapse_classes(parts: list[tuple[SynapsePlan, SynapseArrays]], blocks: dict
 
 
 def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: bool = True,
-                  progress: Callable[[str], None] | None = None) -> Built:
+                  progress: Callable[[str], None] | None = None, ledger: bool = False) -> Built:
     """Build the Brian2 network of a plan (one network for all repeats and sweeps).
 
     Args:
@@ -1104,6 +1145,8 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: b
             per synapse. Deterministic results agree either way to rounding; random draws
             (stochastic release, noise) come in another order.
         progress: optional callable receiving stage messages.
+        ledger: keep ``Built.ledger``, every array of numbers written into a group, a Synapses
+            object or a TimedArray (:func:`assign`), in the order written.
 
     Returns:
         The network and its monitors.
@@ -1189,9 +1232,9 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: b
 
     b2.defaultclock.dt = layout.dt * b2.second
     objects: list[Any] = []
-    built = Built(network=None, layout=layout, names=names, notes=notes)
+    built = Built(network=None, layout=layout, names=names, notes=notes, ledger=[] if ledger else None)
     n = layout.n_cells
-    stim = _stimulus_tables(b2, plan, layout)
+    stim = _stimulus_tables(b2, plan, layout, built.ledger)
 
     specs: dict[str, CellSpec] = {}
     for index, role in enumerate(plan.roles):
@@ -1213,7 +1256,7 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: b
             idx, times = spike_sources[members[0]]
             group = b2.SpikeGeneratorGroup(n, idx, times * b2.second, name=gname)
         else:
-            group = _neuron_group(b2, gname, [specs[r] for r in members], layout)
+            group = _neuron_group(b2, gname, [specs[r] for r in members], layout, built.ledger)
         objects.append(group)
         built.groups[gname] = list(members)
         if len(members) > 1:
@@ -1249,7 +1292,8 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: b
             built.merged[name] = ("synapse", tuple(s.name for s, _ in members))
         rel_var = release_suffix(plan, first) if record_release else None
         objects.append(_tm_object(b2, name, built.cells[first.pre], built.cells[first.post],
-                                  SynapseArrays.concat([arrays for _, arrays in members]), rel_var))
+                                  SynapseArrays.concat([arrays for _, arrays in members]), rel_var,
+                                  built.ledger))
     if record_release:
         for syn in plan.synapses:
             # roles receiving recorded synapses are never merged, so the monitor's cells are the role's
@@ -1322,7 +1366,7 @@ def build_network(plan: Plan, b2: Any, *, record_release: bool = False, merge: b
         valid = np.flatnonzero(np.round(ap["n_sites"])[gen_param] > 0)
         group, count = _tm_synapses(b2, plan, f"{name}_syn", source, built.cells[act.target], valid,
                                     built.blocks[act.target].cells(gen_target[valid]), gen_param[valid], ap,
-                                    act.receptors, act.stochastic, suffix_of)
+                                    act.receptors, act.stochastic, suffix_of, ledger=built.ledger)
         built.n_synapses[act.name] = count
         mon = b2.SpikeMonitor(source, record=True, name=f"inputs_{name.removeprefix('act_')}")
         objects += [source, mon] + ([group] if group is not None else [])
@@ -1371,6 +1415,8 @@ def _population(b2: Any, plan: Plan, built: Built, specs: dict[str, CellSpec], g
         b2, plan, suffix_of, built.layout.dt,
         [(specs[r].per_cell, roles[r].cell_class, roles[r].silenced, receptors_on[r]) for r in guests])
     objects.append(group)
+    if built.ledger is not None:
+        _record_state(built.ledger, group)
     built.population = group
     n, start = built.layout.n_cells, net.population.size
     if guests:
@@ -1381,6 +1427,16 @@ def _population(b2: Any, plan: Plan, built: Built, specs: dict[str, CellSpec], g
     built.population_spikes = b2.SpikeMonitor(group, name=f"spikes_{POPULATION_NAME}")
     objects.append(built.population_spikes)
     return objects
+
+
+def _record_state(ledger: list[Assignment], group: Any) -> None:
+    """Record the state variables of a group that :mod:`protolang.engine.network` filled (the
+    embedded population), read back from the group in equation order, so the ledger lists
+    them like the values written through :func:`assign`."""
+    eqs = group.equations
+    for name in (eq.varname for eq in eqs.ordered):
+        if name in eqs.diff_eq_names or name in eqs.parameter_names:
+            ledger.append(Assignment(group.name, name, np.array(getattr(group, name + "_"), copy=True), group))
 
 
 def _network_connections(b2: Any, plan: Plan, built: Built, suffix_of: dict[str, str]) -> list[Any]:
@@ -1417,7 +1473,7 @@ def _network_connections(b2: Any, plan: Plan, built: Built, suffix_of: dict[str,
                 parts.append(arrays)
         if parts:
             objects.append(_tm_object(b2, f"net_{source_name}_to_{target_name}", source, target,
-                                      SynapseArrays.concat(parts)))
+                                      SynapseArrays.concat(parts), ledger=built.ledger))
     return objects
 
 
