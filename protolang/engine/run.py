@@ -229,6 +229,20 @@ def _raise_runaway(what: str, span, bad: np.ndarray, layout, hint: str):
                 expected="parameters and conductances the time step can follow", hint=hint)
 
 
+def read_back(plan: "Plan", built, record_release: bool):
+    """Recordings of a finished network: traces checked for runaway cells, the population checked,
+    spikes and traces converted (shared by the runtime and the standalone paths)."""
+    raw_traces = _role_traces(built)
+    _check_stability(built, plan, raw_traces)
+    if built.population is not None:
+        from .network import check_population
+
+        fail = Collector()
+        check_population(plan, built.population, fail)
+        fail.raise_if_any()
+    return _collect(plan, built, raw_traces, record_release)
+
+
 def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False, merge: bool = True,
              progress: Callable[[str], None] | None = None) -> Recordings:
     """Simulate a plan with Brian2 and return its recordings.
@@ -297,16 +311,8 @@ def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
             t2 = time.perf_counter()
         warnings = [f"{name}: {msg}" for level, name, msg in logs
                     if not any(w in str(msg) for w in _EXPECTED_WARNINGS)]
-        raw_traces = _role_traces(built)
-        _check_stability(built, plan, raw_traces)
-        if built.population is not None:
-            from .network import check_population
-
-            fail = Collector()
-            check_population(plan, built.population, fail)
-            fail.raise_if_any()
         say("collecting recordings")
-        recordings = _collect(plan, built, raw_traces, record_release)
+        recordings = read_back(plan, built, record_release)
     finally:
         for key, value in saved.items():
             prefs[key] = value

@@ -56,9 +56,8 @@ import numpy as np
 
 from protolang.engine.build import TIMED_ARRAY_VALUES, Built, build_network
 from protolang.engine.recordings import Recordings
-from protolang.engine.run import (_EXPECTED_WARNINGS, _brian_failure, _check_stability, _collect, _import_brian2,
-                                  _role_traces)
-from protolang.language.errors import Collector, ProtocolError
+from protolang.engine.run import _EXPECTED_WARNINGS, _brian_failure, _import_brian2, read_back
+from protolang.language.errors import ProtocolError
 from protolang.plan.model import Plan
 
 #: Short arrays are shown by value in a difference message, longer ones by digest.
@@ -646,15 +645,7 @@ def run_points_standalone(plans: list[Plan], build_dir: str | os.PathLike,
                     t4 = time.perf_counter()
                     _adopt(device, run)
                     point = dataclasses.replace(built, notes=list(dry[k].notes), n_synapses=dict(dry[k].n_synapses))
-                    raw_traces = _role_traces(point)
-                    _check_stability(point, plan, raw_traces)
-                    if point.population is not None:
-                        from .network import check_population
-
-                        fail = Collector()
-                        check_population(plan, point.population, fail)
-                        fail.raise_if_any()
-                    recordings = _collect(plan, point, raw_traces, record_release)
+                    recordings = read_back(plan, point, record_release)
                     t5 = time.perf_counter()
                 shutil.rmtree(run.results, ignore_errors=True)
                 binary_s = (done.ru_utime - used.ru_utime) + (done.ru_stime - used.ru_stime)
