@@ -140,23 +140,33 @@ def parse(text: str, file: str = "<string>") -> ast.Protocol:
     _check_layout(text, file, collector)
     collector.raise_if_any()
     source = text if text.endswith("\n") else text + "\n"
+    # Errors are raised outside the except blocks so that they carry no __context__: lark's
+    # exceptions hold parser state that cannot be pickled (a pickler that keeps exception chains,
+    # as Dask's does, would fail on them).
+    syntax = None
     try:
         with _PARSE_LOCK:
             tree = _parser().parse(source)
     except UnexpectedInput as exc:
-        raise ProtocolError([_syntax_diagnostic(exc, text, file)]) from None
+        syntax = _syntax_diagnostic(exc, text, file)
     except _IndentSlip as exc:
-        raise ProtocolError([_dedent_diagnostic(exc, text, file)]) from None
+        syntax = _dedent_diagnostic(exc, text, file)
     except _GluedKeyword as exc:
-        raise ProtocolError([_glued_diagnostic(exc, file)]) from None
+        syntax = _glued_diagnostic(exc, file)
+    if syntax is not None:
+        raise ProtocolError([syntax])
     lowering = _Lowering(file, collector)
+    failure = None
     try:
         protocol = lowering.transform(tree)
     except VisitError as exc:
-        # Our own bugs keep their traceback; a user error must not show lark's frames.
-        if isinstance(exc.orig_exc, ProtocolError):
-            raise exc.orig_exc.with_traceback(None) from None
-        raise exc.orig_exc from None
+        failure = exc.orig_exc
+    if isinstance(failure, ProtocolError):
+        # a user error must not show lark's frames
+        failure.__context__ = None
+        raise failure.with_traceback(None)
+    if failure is not None:
+        raise failure   # our own bug: keeps its traceback
     collector.diagnostics.sort(key=_position)
     collector.raise_if_any()
     assert isinstance(protocol, ast.Protocol), "internal error: lowering returned no protocol"
