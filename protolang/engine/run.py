@@ -229,6 +229,16 @@ def _raise_runaway(what: str, span, bad: np.ndarray, layout, hint: str):
                 expected="parameters and conductances the time step can follow", hint=hint)
 
 
+def build_or_explain(plan: "Plan", b2, **options):
+    """``build_network(plan, b2, **options)``; a failure inside Brian2 becomes a worded ProtocolError."""
+    try:
+        return build_network(plan, b2, **options)
+    except (ProtocolError, AssertionError):
+        raise
+    except Exception as exc:  # Brian2 rejected something while building
+        raise _brian_failure(exc, "building", plan, None) from exc
+
+
 def read_back(plan: "Plan", built, record_release: bool):
     """Recordings of a finished network: traces checked for runaway cells, the population checked,
     spikes and traces converted (shared by the runtime and the standalone paths)."""
@@ -289,12 +299,7 @@ def run_plan(plan: Plan, *, target: str = "numpy", record_release: bool = False,
         b2.seed(int(plan.seed))
         with catch_logs() as logs:
             t0 = time.perf_counter()
-            try:
-                built = build_network(plan, b2, record_release=record_release, merge=merge, progress=say)
-            except (ProtocolError, AssertionError):
-                raise
-            except Exception as exc:  # Brian2 rejected something while building
-                raise _brian_failure(exc, "building", plan, built) from exc
+            built = build_or_explain(plan, b2, record_release=record_release, merge=merge, progress=say)
             t1 = time.perf_counter()
             say(f"running {built.layout.duration:g} s of simulated time on the {chosen} target")
             report = None

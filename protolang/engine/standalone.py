@@ -56,7 +56,7 @@ import numpy as np
 
 from protolang.engine.build import TIMED_ARRAY_VALUES, Built, build_network
 from protolang.engine.recordings import Recordings
-from protolang.engine.run import _EXPECTED_WARNINGS, _brian_failure, _import_brian2, read_back
+from protolang.engine.run import _EXPECTED_WARNINGS, _brian_failure, _import_brian2, build_or_explain, read_back
 from protolang.language.errors import ProtocolError
 from protolang.plan.model import Plan
 
@@ -290,12 +290,7 @@ def dry_build(plan: Plan, *, record_release: bool = False, merge: bool = True) -
     try:
         with _runtime_device(b2):
             for attempt in range(2):
-                try:
-                    built = build_network(plan, b2, record_release=record_release, merge=merge, ledger=True)
-                except (ProtocolError, AssertionError):
-                    raise
-                except Exception as exc:  # Brian2 rejected something while building
-                    raise _brian_failure(exc, "building", plan, built) from exc
+                built = build_or_explain(plan, b2, record_release=record_release, merge=merge, ledger=True)
                 auto = [_auto_name(obj) for obj in built.network.objects if _auto_name(obj)]
                 if attempt or not any(number for _, _, number in auto):
                     break
