@@ -1,4 +1,4 @@
-"""Command line: a thin layer over the public API (check, parse, plan, run, predict, batch, results).
+"""Command line: a thin layer over the public API (check, parse, plan, run, predict, batch, results, import, compare).
 
 User errors print as ``file:line:col: error: ...`` and exit with status 1; there is never a
 traceback for a user's mistake. ``run --require-agreement`` exits with status 2 when a published
@@ -242,8 +242,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress output (for CI logs)")
     p.set_defaults(func=cmd_batch)
     from .batch.results import add_results_parser
+    from .report.compare_runs import add_compare_parser
+    from .report.importer import add_import_parser
 
     add_results_parser(sub)
+    add_import_parser(sub)
+    add_compare_parser(sub)
     return ap
 
 

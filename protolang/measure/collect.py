@@ -373,7 +373,8 @@ def collect_responses(plan: "Plan", recordings: "Recordings",
             "pre_class": pre.cell_class, "post_class": post.cell_class,
             "distance_um": float(np.linalg.norm(np.asarray(post.positions[r], dtype=float)
                                                 - np.asarray(pre.positions[r], dtype=float))) * UM,
-            "n_release_sites": int(syn.n_sites[r]), "sign": int(sign),
+            # imported recordings do not know their release sites (-1 in the recorded plan): empty
+            "n_release_sites": int(syn.n_sites[r]) if syn.n_sites[r] >= 0 else None, "sign": int(sign),
             "n_sweeps": metrics["n_sweeps"], "n_events": int(nominal.size),
             "pre_spikes_missing": int(np.count_nonzero(~np.isfinite(times))),
             "extra_pre_spikes": extra_total,

@@ -50,6 +50,8 @@ def judge(rule: str, model_mean: float, *, value: float | None = None, sd: float
     """
     if model_mean is None or not math.isfinite(model_mean):
         return "no data", "the model gave no value for this measure"
+    if rule == "sd" and (sd is None or not math.isfinite(sd)):
+        return "no data", "the reference has no SD (a single value), so 'within K sd' cannot be judged"
     if rule == "range":
         inside = low - _EDGE * abs(low) <= model_mean <= high + _EDGE * abs(high)
         word = "inside" if inside else "outside"
@@ -145,3 +147,56 @@ def compare(references: list[dict], tables: dict[str, pd.DataFrame]) -> pd.DataF
 
 def _num(x) -> float:
     return math.nan if x is None else float(x)
+
+
+def recorded_references(recorded: dict[str, pd.DataFrame], *, within: float, source: str,
+                        conditions: str = "", differences: str = "") -> list[dict]:
+    """References made from a recording set's tables: every measure the recordings yield, per cell (pair).
+
+    Each becomes a record like :func:`protolang.plan.references.reference_plans` gives, with
+    the recordings' n, mean and SD (ddof=1) as the published value and the rule
+    ``within K sd`` (K = ``within``), so :func:`compare` judges a model run against the lab's data
+    exactly as against a paper. Measures with fewer than one finite recorded value are left out;
+    with a single value (no SD) the rule cannot be applied and the row reads "no data".
+
+    Args:
+        recorded: the recording set's tables.
+        within: K, the tolerance in recorded SDs.
+        source: text naming the recordings (shown in the ``source`` column).
+        conditions: the recordings' bath, as text.
+        differences: condition differences between model run and recordings, as text.
+
+    Returns:
+        Reference records in table-column units.
+    """
+    from ..plan.references import COLUMN_UNIT
+    from .registry import REFERENCE_MEASURES
+
+    refs = []
+    for measure, entry in REFERENCE_MEASURES.items():
+        table = recorded.get(entry["table"])
+        if table is None or table.empty:
+            continue
+        if entry["table"] == "cells":
+            keys = [(cell, None) for cell in dict.fromkeys(table["role"])]
+        elif {"post", "pre"} <= set(table.columns):
+            keys = list(dict.fromkeys(zip(table["post"], table["pre"])))
+        else:
+            continue
+        for cell, src in keys:
+            unit = COLUMN_UNIT.get(entry["dimension"])
+            if entry["dimension"] == "trace":
+                unit = "pA" if any(c.endswith("_pA") for c in table.columns) else "mV"
+            ref = {"measure": measure, "cell": cell, "source_cell": src, "on_patch": False,
+                   "dimension": entry["dimension"], "unit": unit}
+            values = model_values(ref, recorded)
+            if values.size == 0:
+                continue
+            mean = float(np.mean(values))
+            sd = float(np.std(values, ddof=1)) if values.size > 1 else None
+            ref.update(value=mean, sd=sd, low=None, high=None, n=int(values.size),
+                       rule="sd", tolerance=float(within), rule_text=f"within {within:g} sd",
+                       source=source, from_memory=False, note="", conditions=conditions,
+                       differences=differences, unaccepted_differences=[], span="")
+            refs.append(ref)
+    return refs
