@@ -8,7 +8,7 @@ export CYTHON_CACHE_DIR := $(CURDIR)/.cache/cython
 export PROTOLANG_STANDALONE_CACHE := $(CURDIR)/.cache/standalone
 export OMP_NUM_THREADS := 1
 
-.PHONY: demo test bench clean
+.PHONY: demo test bench clean browser
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -19,8 +19,25 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(VENV)/bin/protolang run demo/pyramid_pair_train.protocol --out runs/demo --force
 
-test: $(STAMP)
+test: $(STAMP) browser
 	$(PY) -m pytest -q tests
+
+# Headless Chromium opens the HTML run report in tests/test_run_report.py: install it once if missing
+# (apt-get as root, else through sudo; says what to do when neither works).
+CHROMIUM := /usr/bin/chromium
+
+browser:
+	@if [ -x "$(CHROMIUM)" ]; then exit 0; fi; \
+	if [ "$$(id -u)" -eq 0 ]; then SUDO=""; \
+	elif command -v sudo >/dev/null 2>&1; then SUDO="sudo"; \
+	else echo "make browser: $(CHROMIUM) is missing and this user can neither install packages nor use sudo;" \
+	          "ask an administrator to run 'apt-get install -y chromium', then run make test again" >&2; exit 1; fi; \
+	echo "make browser: installing chromium (tests/test_run_report.py renders the HTML report with it)"; \
+	$$SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y chromium \
+	  || { $$SUDO apt-get update && $$SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y chromium; } \
+	  || { echo "make browser: could not install chromium; install it by hand ('apt-get install -y chromium')" \
+	            "and run make test again" >&2; exit 1; }; \
+	[ -x "$(CHROMIUM)" ] || { echo "make browser: chromium was installed but $(CHROMIUM) is missing" >&2; exit 1; }
 
 bench: $(STAMP)
 	$(PY) bench/paired_train.py

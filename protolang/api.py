@@ -132,7 +132,7 @@ class Experiment:
 
     # -- back end ----------------------------------------------------------------
     def run(self, out: str | os.PathLike | None = None, *, target: str = "auto",
-            progress: Callable[[str], None] | None = None, force: bool = False) -> Result:
+            progress: Callable[[str], None] | None = None, force: bool = False, nwb: bool = False) -> Result:
         """Simulate, collect the tables and (if ``out`` is given) write the run folder.
 
         Args:
@@ -140,6 +140,8 @@ class Experiment:
             target: Brian2 code-generation target: "numpy", "cython" or "auto".
             progress: callable receiving one line per stage.
             force: replace an existing run folder.
+            nwb: also write ``recordings.nwb`` (each point's folder of a scan), the virtual
+                recordings in full precision (:func:`protolang.report.nwb.write_nwb`).
 
         Returns:
             Result with ``tables`` (dict of DataFrames) and ``recordings``.
@@ -181,7 +183,8 @@ class Experiment:
         prov["wall_time_s"] = time.perf_counter() - t0   # up to writing the folder
         if out is not None:
             say("writing run folder")
-            result.out_dir, result.paths = _write_atomically(Path(out), result, force)
+            result.out_dir, result.paths = _write_atomically(Path(out), result, force,
+                                                             nwb_text=self.text if nwb else None)
         return result
 
     def run_point(self, point: int, out: str | os.PathLike | None = None, *, target: str = "auto",
@@ -295,9 +298,18 @@ def _simulate_and_collect(plan, target: str, say: Callable[[str], None], timings
     return recordings, tables
 
 
-def _write_atomically(out: Path, result: Result, force: bool):
-    """Write the run folder under a temporary name and rename it into place when complete."""
+def _write_atomically(out: Path, result: Result, force: bool, nwb_text: str | None = None):
+    """Write the run folder under a temporary name and rename it into place when complete.
+
+    With ``nwb_text`` (the protocol's text) each point's recordings also go to ``recordings.nwb``.
+    """
     from .report.write import write_recordings_npz, write_run
+
+    def add_nwb(folder: Path, point) -> Path:
+        from .report.nwb import write_nwb
+
+        return write_nwb(folder / "recordings.nwb", point.plan, point.recordings,
+                         provenance=result.provenance, protocol_text=nwb_text)
 
     out = out.resolve()
     out.parent.mkdir(parents=True, exist_ok=True)
@@ -310,9 +322,14 @@ def _write_atomically(out: Path, result: Result, force: bool):
             from .report.scan import write_scan
 
             paths = write_scan(tmp, result.points, result.tables, result.provenance)
+            if nwb_text is not None:
+                for k, point in enumerate(result.points):
+                    paths[f"points/{k + 1:02d}/recordings.nwb"] = add_nwb(tmp / "points" / f"{k + 1:02d}", point)
         else:
             paths = write_run(tmp, result.plan, result.recordings, result.tables, result.provenance)
             paths["recordings.npz"] = write_recordings_npz(tmp, result.recordings)
+            if nwb_text is not None:
+                paths["recordings.nwb"] = add_nwb(tmp, result)
         if out.exists() and force:
             shutil.rmtree(out)
         os.replace(tmp, out)

@@ -1,4 +1,4 @@
-"""Command line: a thin layer over the public API (check, parse, plan, run, predict, batch, results, import, compare).
+"""Command line: a thin layer over the public API (check, parse, plan, run, predict, batch, results, import, compare, report).
 
 User errors print as ``file:line:col: error: ...`` and exit with status 1; there is never a
 traceback for a user's mistake. ``run --require-agreement`` exits with status 2 when a published
@@ -111,7 +111,7 @@ def cmd_run(args) -> int:
             _err(f"[{time.perf_counter() - start:7.1f} s] {msg}")
 
     exp = load(args.file)
-    result = exp.run(args.out, target=args.target, progress=progress, force=args.force)
+    result = exp.run(args.out, target=args.target, progress=progress, force=args.force, nwb=args.nwb)
     for name, table in result.tables.items():
         progress(f"table {name}: {len(table)} rows")
     print(f"results written to {result.out_dir}")
@@ -209,6 +209,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--target", default="auto", choices=["auto", "numpy", "cython", "standalone"],
                    help="Brian2 code-generation target (auto: cython when a compiler works; standalone: one compiled C++ binary per network structure, re-run per scan point)")
     p.add_argument("--force", action="store_true", help="replace an existing run folder")
+    p.add_argument("--nwb", action="store_true", help="also write the virtual recordings as recordings.nwb "
+                                                      "(Neurodata Without Borders, full precision)")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.add_argument("--require-agreement", action="store_true",
                    help="exit with status 2 when any reference does not agree (or has no model data); "
@@ -244,10 +246,12 @@ def build_parser() -> argparse.ArgumentParser:
     from .batch.results import add_results_parser
     from .report.compare_runs import add_compare_parser
     from .report.importer import add_import_parser
+    from .report.run_report import add_report_parser
 
     add_results_parser(sub)
     add_import_parser(sub)
     add_compare_parser(sub)
+    add_report_parser(sub)
     return ap
 
 
