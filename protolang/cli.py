@@ -1,4 +1,5 @@
-"""Command line: a thin layer over the public API (check, parse, plan, run, predict, batch, results, import, compare, report, sheet, stimulus).
+"""Command line: a thin layer over the public API (check, parse, plan, run, predict, batch, results, nwb, import, compare,
+report, sheet, stimulus).
 
 User errors print as ``file:line:col: error: ...`` and exit with status 1; there is never a
 traceback for a user's mistake. ``run --require-agreement`` exits with status 2 when a published
@@ -246,11 +247,13 @@ def build_parser() -> argparse.ArgumentParser:
     from .batch.results import add_results_parser
     from .report.compare_runs import add_compare_parser
     from .report.importer import add_import_parser
+    from .report.nwb import add_nwb_parser
     from .report.run_report import add_report_parser
     from .report.sheet import add_sheet_parser
     from .report.stimulus import add_stimulus_parser
 
     add_results_parser(sub)
+    add_nwb_parser(sub)
     add_import_parser(sub)
     add_compare_parser(sub)
     add_report_parser(sub)
