@@ -269,3 +269,68 @@ def test_cli_import_and_missing_map(dataset, tmp_path, capsys):
     assert main(["import", str(dataset / "pairs.protocol"), "--map", str(dataset / "map.yaml"),
                  "--out", str(tmp_path / "y"), "--quiet"]) == 0
     assert "imported 4 repeat(s) x 12 sweep(s) at 10000 Hz" in capsys.readouterr().out
+
+
+# --- the same synthetic pairs as a lab's NWB file (written with pynwb, no protolang columns) ------
+def _lab_nwb(dataset, path):
+    """Every synthetic pair as two electrodes, one CurrentClampSeries per cell and sweep (mV numbers,
+    conversion 1e-3), grouped as simultaneous recordings, as a lab's acquisition software might."""
+    import datetime as dt
+    import warnings
+
+    from pynwb import NWBHDF5IO, NWBFile
+    from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
+
+    f = NWBFile(session_description="invented synthetic pairs", identifier="synthetic-pairs",
+                session_start_time=dt.datetime(2026, 1, 5, 9, 0, tzinfo=dt.timezone.utc))
+    dev = f.create_device(name="amplifier")
+    start = 0.0
+    for k in range(4):
+        frame = pd.read_csv(dataset / f"pair{k + 1}.csv")
+        el = {c: f.create_icephys_electrode(name=f"pair{k + 1}_{c}", device=dev, description=f"cell {c}",
+                                            location="deep layer") for c in ("a", "b")}
+        for s in range(1, N_SWEEPS + 1):
+            rows = []
+            for c, column in (("a", f"pre_{s}"), ("b", f"post_{s}")):
+                resp = CurrentClampSeries(name=f"p{k}_{c}_{s}", data=frame[column].to_numpy(), electrode=el[c],
+                                          conversion=1e-3, rate=RATE, starting_time=start, sweep_number=s,
+                                          gain=1.0, unit="volts")
+                stim = CurrentClampStimulusSeries(name=f"p{k}_{c}_{s}_stim", data=np.zeros(len(frame)),
+                                                  electrode=el[c], rate=RATE, starting_time=start, sweep_number=s,
+                                                  gain=1.0, unit="amperes")
+                rows.append(f.add_intracellular_recording(electrode=el[c], stimulus=stim, response=resp))
+            f.add_icephys_simultaneous_recording(recordings=rows)
+            start += 1.0
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with NWBHDF5IO(str(path), "w") as io:
+            io.write(f)
+    return path
+
+
+def test_lab_nwb_with_a_map_gives_the_csv_tables(dataset, imported, tmp_path):
+    nwb = _lab_nwb(dataset, tmp_path / "lab.nwb")
+    entries = "".join(f"  - electrodes: {{pre: pair{k + 1}_a, post: pair{k + 1}_b}}\n"
+                      f"    connected: {'yes' if k < 3 else 'no'}\n    distance: {60 + 10 * k} um\n" for k in range(4))
+    (tmp_path / "map.yaml").write_text("cells:\n  pre: {unit: mV}\n  post: {unit: mV}\nrepeats:\n" + entries)
+    back = import_recordings(dataset / "pairs.protocol", tmp_path / "set", nwb=str(nwb),
+                             map_path=str(tmp_path / "map.yaml"))
+    # the same numbers through two containers give the same tables (to float precision)
+    a, b = imported.tables["connections"], back.tables["connections"]
+    for col in ("amplitude_mean_mV", "decay_tau_ms", "ppr", "latency_ms", "cv", "failure_rate", "distance_um"):
+        np.testing.assert_allclose(a[col].to_numpy(float), b[col].to_numpy(float), rtol=1e-9, equal_nan=True,
+                                   err_msg=col)
+    # an electrode the file does not have is named, with the file's electrodes as the choice
+    (tmp_path / "bad.yaml").write_text("cells:\n  pre: {unit: mV}\n  post: {unit: mV}\nrepeats:\n"
+                                       "  - electrodes: {pre: pair1_c, post: pair1_b}\n    connected: yes\n")
+    with pytest.raises(ProtocolError) as info:
+        import_recordings(dataset / "pairs.protocol", tmp_path / "bad", nwb=str(nwb), map_path=str(tmp_path / "bad.yaml"))
+    assert "pair1_c" in str(info.value) and "bad.yaml:5:" in str(info.value) and "pair1_a" in str(info.value)
+    assert not (tmp_path / "bad").exists()
+
+
+def test_lab_nwb_without_a_map_is_refused(dataset, tmp_path):
+    nwb = _lab_nwb(dataset, tmp_path / "lab.nwb")
+    with pytest.raises(ProtocolError) as info:
+        import_recordings(dataset / "pairs.protocol", tmp_path / "set", nwb=str(nwb))
+    assert "lab.nwb" in str(info.value) and "--map" in str(info.value)

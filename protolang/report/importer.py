@@ -213,6 +213,11 @@ def read_csv_set(rmap: RecordingMap, plan: "Plan") -> RecordingSet:
                 raise error(f"{file}: column {rmap.time_column!r} is not evenly spaced "
                             f"(intervals {steps.min():.6g} to {steps.max():.6g} s)", None,
                             expected="one sample rate per file", hint="resample the traces to one rate")
+            # the rate over the whole column, snapped to a whole number of Hz when it is one to
+            # float precision (sample times printed in decimal are rarely exact multiples)
+            rate = (len(t) - 1) / (t[-1] - t[0])
+            rate = float(round(rate)) if abs(rate - round(rate)) <= 1e-6 * rate else rate
+            step = 1.0 / rate
             if dt is not None and abs(step - dt) > RATE_TOLERANCE * 1e3 * dt:
                 raise error(f"{file}: column {rmap.time_column!r} says {1 / step:.6g} Hz but the recording map's "
                             f"sample_rate says {rmap.sample_rate:.6g} Hz", rmap.span("sample_rate"),
