@@ -126,3 +126,48 @@ def test_provenance_lists_the_nwb_file(exported):
     assert (result.out_dir / "recordings.nwb").stat().st_size > 10_000
     prov = json.loads((result.out_dir / "provenance.json").read_text())
     assert prov["seed"] == 5
+
+
+CELLS = """# Invented test protocol: two classes characterised with a small step family
+protocol "NWB round trip of the cell measures"
+circuit "{circuit}" seed 4
+
+bath:
+    block AMPA
+    block NMDA
+    block GABA_A
+
+cells:
+    pyr is pyramidal_deep
+    basket is basket_fast
+    repeat 2
+
+sweeps 4 every 2 s
+
+record pyr: current clamp
+record basket: current clamp
+
+stimulate pyr:
+    steps of -100 pA to 350 pA by 150 pA for 300 ms at 50 ms
+stimulate basket:
+    steps of -100 pA to 350 pA by 150 pA for 300 ms at 50 ms
+
+measure pyr:
+    passive
+    firing
+    fi
+measure basket:
+    passive
+    firing
+    fi
+"""
+
+
+def test_cell_measures_survive_the_round_trip(tmp_path):
+    path = tmp_path / "cells.protocol"
+    path.write_text(CELLS.format(circuit=CIRCUIT))
+    result = protolang.load(path).run(tmp_path / "run", nwb=True)
+    back = import_recordings(path, tmp_path / "set", nwb=str(result.out_dir / "recordings.nwb"))
+    assert {"cells", "cell_sweeps", "classes"} <= set(result.tables)
+    for name in ("cells", "cell_sweeps", "classes"):
+        _same(result.tables[name], back.tables[name], name)
