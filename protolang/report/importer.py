@@ -332,7 +332,7 @@ def read_nwb_set(path: str, plan: "Plan", rmap: RecordingMap | None) -> Recordin
                                 hint=suggest(name, content.electrodes))
             layout.append(dict(entry.electrodes))
     threshold = rmap.spike_threshold if rmap is not None else DEFAULT_SPIKE_THRESHOLD
-    repeats, n_sweeps_all, n_samples = [], None, None
+    repeats, n_sweeps_all, n_samples, pending = [], None, None, []
     for r, electrodes in enumerate(layout):
         for role in roles:
             if roles[role] != "off" and role not in electrodes:
@@ -385,12 +385,8 @@ def read_nwb_set(path: str, plan: "Plan", rmap: RecordingMap | None) -> Recordin
             key = f"{role}[{r}]"
             ref_starts = per_role[role].starts if role in per_role else starts
             if key in content.spikes and ref_starts is not None:
-                spk = np.asarray(content.spikes[key], dtype=float)
-                per_sweep = [spk[(spk >= s0 - 1e-9) & (spk < s0 + n_samples / rate + 1e-9)] - s0 for s0 in ref_starts]
-                if role in per_role:
-                    per_role[role].spikes = per_sweep
-                else:
-                    repeat.spikes_only[role] = per_sweep
+                # cut into sweeps below, once the common sweep length is known
+                pending.append((repeat, role, np.asarray(content.spikes[key], dtype=float), ref_starts))
         for syn in plan.synapses:
             meta = pairs_meta.get((syn.name, r))
             if meta is not None:
@@ -404,7 +400,14 @@ def read_nwb_set(path: str, plan: "Plan", rmap: RecordingMap | None) -> Recordin
                             expected="connected: yes or no for every repeat in the recording map",
                             hint="the lab decides connectivity; protolang does not guess it")
         repeats.append(repeat)
-    # cut every series to the common length and stack
+    # cut every series (and the file's spike times) to the common sweep length and stack
+    length = n_samples / rate
+    for repeat, role, spk, starts_of in pending:
+        per_sweep = [spk[(spk >= s0 - 1e-9) & (spk < s0 + length - 1e-9)] - s0 for s0 in starts_of]
+        if role in repeat.cells:
+            repeat.cells[role].spikes = per_sweep
+        else:
+            repeat.spikes_only[role] = per_sweep
     for repeat in repeats:
         for role, cell in repeat.cells.items():
             cell.traces = np.stack([np.asarray(d[:n_samples], dtype=float) for d in cell.traces])
