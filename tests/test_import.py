@@ -334,3 +334,18 @@ def test_lab_nwb_without_a_map_is_refused(dataset, tmp_path):
     with pytest.raises(ProtocolError) as info:
         import_recordings(dataset / "pairs.protocol", tmp_path / "set", nwb=str(nwb))
     assert "lab.nwb" in str(info.value) and "--map" in str(info.value)
+
+
+def test_features_do_not_depend_on_the_last_digits_of_the_sample_interval(dataset):
+    # A sample interval read from a printed time column differs from 1e-4 s in its last digits;
+    # every feature must be the same (a window of n + 1/2 samples must not flip; common practice,
+    # no single source: measurements do not depend on float rounding).
+    from protolang.measure import features as F
+
+    frame = pd.read_csv(dataset / "pair2.csv")
+    trace = frame["post_1"].to_numpy() * MV
+    event = crossing_time(ONSETS[0])
+    exact = F.response_features(trace, DT, event, event + 0.040)
+    off = F.response_features(trace, DT * (1 - 1.1e-13), event, event + 0.040)
+    for name in ("amplitude", "baseline", "latency", "rise_20_80", "decay_tau"):
+        assert getattr(off, name) == pytest.approx(getattr(exact, name), rel=1e-9), name

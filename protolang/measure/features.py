@@ -139,7 +139,9 @@ def smooth_trace(trace: np.ndarray, dt: float, width: float = DEFAULT_SMOOTH) ->
     Returns:
         Array of the same shape.
     """
-    half = int(math.floor(width / (2.0 * dt) + 0.5))
+    # a half-width of exactly n + 0.5 samples rounds down; the slack keeps a sample interval that
+    # differs in the last digits (1e-4 s read from a printed time column) on the same side
+    half = int(math.floor(width / (2.0 * dt) + 0.5 - _EPS_SAMPLES))
     trace = np.asarray(trace, dtype=float)
     if half < 1:
         return trace.copy()
