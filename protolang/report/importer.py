@@ -454,7 +454,9 @@ def recorded_plan(plan: "Plan", rset: RecordingSet, rmap: RecordingMap | None = 
         role.positions = pos
         role.holding_current = None if role.holding_current is None else np.full(n_rep, np.nan)
         role.amplitude_scale = None
-        role.params = {k: np.asarray(v)[:1].repeat(n_rep, axis=0) if np.ndim(v) and len(v) else v
+        role.model = "recorded"    # a real cell, not one of the engine's models
+        # the model's parameters say nothing about a recorded cell: kept as names, emptied as values
+        role.params = {k: np.full((n_rep,) + np.shape(v)[1:], np.nan) if np.ndim(v) else v
                        for k, v in role.params.items()}
         if rmap is not None and rmap.stimulus_times is not None and role.events:
             events = sorted(role.events, key=lambda e: e.time)
