@@ -75,7 +75,8 @@ def _same(a: pd.DataFrame, b: pd.DataFrame, name: str) -> None:
 
 
 def test_export_reads_back_in_pynwb(exported):
-    # pynwb, the NWB reference API, reads the file on its own (not through protolang's reader)
+    # pynwb, the NWB reference API (Rubel et al. 2022, eLife; from memory), reads the file on its
+    # own, not through protolang's reader
     from pynwb import NWBHDF5IO
 
     mode, _path, result = exported
@@ -94,6 +95,7 @@ def test_export_reads_back_in_pynwb(exported):
 def test_import_of_the_export_gives_the_run_tables(exported, tmp_path):
     mode, path, result = exported
     back = import_recordings(path, tmp_path / "set", nwb=str(result.out_dir / "recordings.nwb"))
+    # a lossless export and import must give the same numbers (common practice, no single source)
     for name in ("responses", "connections", "pathways"):
         _same(result.tables[name], back.tables[name], name)
     assert set(back.tables) == set(result.tables)
