@@ -173,3 +173,16 @@ def test_cell_measures_survive_the_round_trip(tmp_path):
     assert {"cells", "cell_sweeps", "classes"} <= set(result.tables)
     for name in ("cells", "cell_sweeps", "classes"):
         _same(result.tables[name], back.tables[name], name)
+
+
+def test_import_with_another_protocol_names_both(exported, tmp_path):
+    from protolang.language.errors import ProtocolError
+
+    _mode, _path, result = exported
+    other = tmp_path / "cells.protocol"
+    other.write_text(CELLS.format(circuit=CIRCUIT))
+    with pytest.raises(ProtocolError) as info:
+        import_recordings(other, tmp_path / "set", nwb=str(result.out_dir / "recordings.nwb"))
+    msg = str(info.value)
+    assert "holds cells post, pre" in msg and "NWB round trip" in msg and "basket, pyr" in msg
+    assert not (tmp_path / "set").exists()

@@ -313,6 +313,13 @@ def read_nwb_set(path: str, plan: "Plan", rmap: RecordingMap | None) -> Recordin
             raise error(f"{path} does not say which electrode is which protocol cell", None,
                         expected="an NWB file exported by protolang, or a recording map",
                         hint="write a recording map with 'repeats: - electrodes: {pre: NAME, post: NAME}' and pass --map")
+        in_file = sorted({str(info["role"]) for info in tagged.values()})
+        recorded = sorted(r for r, mode in roles.items() if mode != "off")
+        if in_file != recorded:
+            title = content.session.get("description") or "another protocol"
+            raise error(f"{path} holds cells {', '.join(in_file)} (exported from {title!r}), but the protocol records "
+                        f"{', '.join(recorded)}", None, expected="the protocol the file was exported from",
+                        hint="import with the protocol that was run, or write a recording map that names the electrodes")
         n_repeat = 1 + max(int(info["repeat"]) for info in tagged.values())
         layout = [{} for _ in range(n_repeat)]
         for name, info in tagged.items():
