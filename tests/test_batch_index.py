@@ -459,3 +459,49 @@ def test_results_errors(tmp_path):
     assert_user_error(info.value, "does not exist")
     with pytest.raises(SystemExit):      # argparse rejects an unknown status with its usage message
         results_cmd(str(results), "--status", "finished")
+
+
+def _hold_lock(results, batch_id, ready, stop):
+    from protolang.batch.index import BatchLock
+
+    with BatchLock(results, batch_id):
+        ready.set()
+        stop.wait(60)
+
+
+def test_a_new_batch_leaves_a_running_batch_alone(tmp_path):
+    # Liveness through flock: the OS drops a dead process's lock (POSIX flock semantics, from memory),
+    # so a batch still running keeps its queued/running rows while a dead batch's become interrupted.
+    from protolang.batch.index import batch_alive
+    from protolang.batch.runner import batch
+
+    results = tmp_path / "R"
+    ctx = mp.get_context("spawn")
+    ready, stop = ctx.Event(), ctx.Event()
+    holder = ctx.Process(target=_hold_lock, args=(str(results), "live", ready, stop))
+    holder.start()
+    try:
+        assert ready.wait(60)
+        with ResultIndex(results) as index:
+            index.upsert(row("a", status="running", batch="live"))
+            index.upsert(row("b", status="queued", batch="live"))
+            index.upsert(row("c", status="running", batch="dead"))
+            assert index.unfinished_batches() == ["dead", "live"]
+        assert batch_alive(results, "live") and not batch_alive(results, "dead")
+        lib = tmp_path / "lib"
+        lib.mkdir()
+        (lib / "broken.protocol").write_text("protocol \"x\"\nnonsense here\n")
+        summary = batch([str(lib)], results, jobs=1, quiet=True)
+        assert summary.invalid == 1
+        statuses = dict(raw(results, "SELECT key, status FROM runs WHERE key IN ('a', 'b', 'c')"))
+        assert statuses == {"a": "running", "b": "queued", "c": "interrupted"}
+        assert not (results / "batches" / f"{summary.batch}.lock").exists()   # released and removed
+    finally:
+        holder.kill()          # dies without cleaning up: its lock file stays, its lock does not
+        holder.join(30)
+    assert (results / "batches" / "live.lock").exists()
+    assert not batch_alive(results, "live")
+    # so the next batch marks its runs interrupted
+    batch([str(lib)], results, jobs=1, quiet=True)
+    statuses = dict(raw(results, "SELECT key, status FROM runs WHERE key IN ('a', 'b')"))
+    assert statuses == {"a": "interrupted", "b": "interrupted"}

@@ -17,6 +17,11 @@ import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable
 
+try:   # POSIX: batch liveness through flock (see BatchLock)
+    from fcntl import LOCK_EX as _LOCK_EX, LOCK_NB as _LOCK_NB, flock as _flock
+except ImportError:  # pragma: no cover - not a POSIX system
+    _flock, _LOCK_EX, _LOCK_NB = None, 0, 0
+
 from ..api import __version__
 from ..language.errors import ProtocolError, error
 
@@ -345,6 +350,11 @@ class ResultIndex:
         df["point"] = df["point"].astype("Int64")
         return df
 
+    def unfinished_batches(self) -> list[str]:
+        """Ids of the batches that have queued or running runs (live, or killed before they could say)."""
+        rows = self._read("SELECT DISTINCT batch FROM runs WHERE status IN ('queued', 'running') AND batch IS NOT NULL")
+        return sorted(str(r[0]) for r in rows)
+
     def mark_unfinished(self, status: str = "interrupted", *, batch: str | None = None) -> int:
         """Give every queued or running run ``status`` (after a batch was stopped or crashed).
 
@@ -383,3 +393,57 @@ class ResultIndex:
 
     def __repr__(self) -> str:
         return f"ResultIndex({str(self.results_dir)!r})"
+
+
+# -- which batches are alive ----------------------------------------------------------------
+LOCK_FOLDER = "batches"
+
+
+class BatchLock:
+    """An exclusive lock on ``RESULTS/batches/<id>.lock`` held while a batch runs.
+
+    The lock is an advisory ``flock`` on an open file: the operating system releases it when the
+    process ends, however it ends (SIGKILL included), so a later batch can tell a batch that is
+    still running from one that died with runs marked queued or running. Local file systems
+    only: on a network file system without ``flock`` every other batch looks dead (the former
+    behaviour: its unfinished runs are marked interrupted).
+    """
+
+    def __init__(self, results_dir: str | os.PathLike, batch: str):
+        self.path = Path(results_dir) / LOCK_FOLDER / f"{batch}.lock"
+        self._fh = None
+
+    def __enter__(self) -> "BatchLock":
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self._fh = open(self.path, "a+")
+        if _flock is not None:
+            _flock(self._fh.fileno(), _LOCK_EX | _LOCK_NB)   # a fresh id: nobody else holds it
+        self._fh.write(f"{os.getpid()}\n")
+        self._fh.flush()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self._fh is not None:
+            try:
+                self.path.unlink()
+            except FileNotFoundError:
+                pass
+            self._fh.close()   # closing releases the lock
+            self._fh = None
+
+
+def batch_alive(results_dir: str | os.PathLike, batch: str) -> bool:
+    """Whether a process still holds ``batch``'s :class:`BatchLock` (False when its file is gone)."""
+    path = Path(results_dir) / LOCK_FOLDER / f"{batch}.lock"
+    if _flock is None:
+        return False
+    try:
+        fh = open(path, "r")
+    except FileNotFoundError:
+        return False
+    with fh:
+        try:
+            _flock(fh.fileno(), _LOCK_EX | _LOCK_NB)
+        except BlockingIOError:
+            return True
+        return False    # closing the file releases the lock we just took

@@ -127,7 +127,7 @@ def batch(paths: list[str], results: str | os.PathLike, *, jobs: int | None = No
             results folder from an incompatible version.
         KeyboardInterrupt: after marking the unfinished runs ``interrupted`` in the index.
     """
-    from .index import ResultIndex
+    from .index import BatchLock, ResultIndex, batch_alive
     from .pool import DaskPool, LocalPool
     from .results import combine_tables
 
@@ -136,8 +136,11 @@ def batch(paths: list[str], results: str | os.PathLike, *, jobs: int | None = No
     files = discover(list(paths))
     results.mkdir(parents=True, exist_ok=True)
     summary = BatchSummary(batch=time.strftime("%Y%m%d-%H%M%S-") + uuid.uuid4().hex[:6])
-    with ResultIndex(results) as index:
-        index.mark_unfinished("interrupted")
+    with BatchLock(results, summary.batch), ResultIndex(results) as index:
+        # runs left queued or running by a batch that died; a batch still running keeps its own
+        for stale in index.unfinished_batches():
+            if not batch_alive(results, stale):
+                index.mark_unfinished("interrupted", batch=stale)
         # 1. expand files into units (parse only); a file that does not parse is one invalid unit
         units: list[Unit] = []
         broken: list[Unit] = []
