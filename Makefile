@@ -18,6 +18,8 @@ $(STAMP): pyproject.toml
 
 demo: $(STAMP)
 	$(VENV)/bin/protolang run demo/pyramid_pair_train.protocol --out runs/demo --force
+	$(VENV)/bin/protolang report runs/demo
+	$(VENV)/bin/protolang sheet demo/pyramid_pair_train.protocol --out runs/demo_sheet --run runs/demo --force
 
 test: $(STAMP) browser
 	$(PY) -m pytest -q tests
