@@ -178,6 +178,8 @@ class Experiment:
             tables = combine([(r.values, r.tables) for r in runs])
         else:
             tables = runs[0].tables
+        if nwb:
+            prov["nwb_file"] = "recordings.nwb"   # in each point's folder for a scan
         result = Result(plan=runs[0].plan, recordings=runs[0].recordings, tables=tables, provenance=prov,
                         points=runs)
         prov["wall_time_s"] = time.perf_counter() - t0   # up to writing the folder
@@ -357,6 +359,7 @@ def provenance(exp: Experiment, plan, recordings, timings: dict) -> dict:
     plan_json = plan.to_json()
     return {
         "protocol_file": exp.path,
+        "protocol_path": str(Path(exp.path).resolve()) if exp.path else None,   # found from any folder
         "protocol_sha256": hashlib.sha256(exp.text.encode()).hexdigest(),
         "circuit_file": plan.circuit_file,
         "circuit_sha256": plan.circuit_hash,

@@ -156,6 +156,10 @@ def test_collectors_recover_the_known_synthetic_responses(imported):
     # Latency: presynaptic crossing to 10 % of the peak = synaptic delay + t10 of the closed form.
     t10 = brentq(lambda x: float(unit_psp(x)) - 0.1, 1e-12, doe_peak_time(T1, T2))
     assert linked["latency_ms"].to_numpy() == pytest.approx([(SYN_DELAY + t10) / MS] * 3, abs=0.1)
+    # Rise: 20-80 % of the closed-form PSP (brentq on REFERENCES.md A2). Noise of 4 % of the smallest
+    # peak moves each level crossing by ~0.07 ms on this slope: 0.15 ms (1.5 samples) is the stated tolerance.
+    t20, t80 = (brentq(lambda x, f=f: float(unit_psp(x)) - f, 1e-12, doe_peak_time(T1, T2)) for f in (0.2, 0.8))
+    assert linked["rise_20_80_ms"].to_numpy() == pytest.approx([(t80 - t20) / MS] * 3, abs=0.15)
     assert (linked["failure_rate"] == 0).all()
     assert linked["pre_spikes_missing"].sum() == 0
     # the model-only facts are empty, not invented
@@ -399,3 +403,29 @@ def test_voltage_clamp_csv_in_pA(dataset, tmp_path):
     with pytest.raises(ProtocolError) as info:
         import_recordings(tmp_path / "vc.protocol", None, map_path=str(tmp_path / "bad.yaml"))
     assert "bad.yaml:4:" in str(info.value) and "voltage clamp" in str(info.value)
+
+
+def test_empty_or_short_sweeps_are_refused(dataset, tmp_path):
+    frame = _pair_frame(dataset)
+    msg = _run_import(dataset, tmp_path, MAP_HEAD + "repeats:\n  - file: a.csv\n    connected: yes\n",
+                      {"a.csv": frame.iloc[:0]})
+    assert "a.csv has 0 data row(s)" in msg and "map.yaml:6:" in msg
+    # 120 ms of data cannot hold the protocol's second event at 150 ms
+    msg = _run_import(dataset, tmp_path, MAP_HEAD + "repeats:\n  - file: a.csv\n    connected: yes\n",
+                      {"a.csv": frame.iloc[:1200]})
+    assert "last 120 ms" in msg and "150 ms" in msg and "a.csv" in msg
+
+
+def test_the_map_may_name_its_nwb_file(dataset, tmp_path):
+    nwb = _lab_nwb(dataset, tmp_path / "lab.nwb")
+    entries = "".join(f"  - electrodes: {{pre: pair{k + 1}_a, post: pair{k + 1}_b}}\n    connected: yes\n"
+                      for k in range(3))
+    (tmp_path / "map.yaml").write_text(f"file: {nwb.name}\ncells:\n  pre: {{unit: mV}}\n  post: {{unit: mV}}\n"
+                                       "repeats:\n" + entries)
+    got = import_recordings(dataset / "pairs.protocol", None, map_path=str(tmp_path / "map.yaml"))
+    assert len(got.tables["connections"]) == 3 and got.provenance["sources"][0]["file"].endswith("lab.nwb")
+    assert got.provenance["simulated"] is False
+    (tmp_path / "csv.yaml").write_text("file: pair1.csv\n" + MAP_HEAD + "repeats:\n  - file: a.csv\n")
+    with pytest.raises(ProtocolError, match="not an NWB file") as info:
+        import_recordings(dataset / "pairs.protocol", None, map_path=str(tmp_path / "csv.yaml"))
+    assert "csv.yaml:1:7" in str(info.value)

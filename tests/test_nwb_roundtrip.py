@@ -109,6 +109,8 @@ def test_compare_cli_finds_no_difference(exported, tmp_path, capsys):
     table = pd.read_csv(tmp_path / "cmp" / "tables" / "comparison.csv")
     judged = table[table["reference_sd"].notna()]
     assert len(judged) >= 5
+    # every pair was chosen as connected in both: no probability row (it would measure nothing)
+    assert "probability" not in set(table["measure"])
     # identical data: every difference is 0 and every judged measure agrees (the rule's arithmetic)
     assert np.allclose(judged["difference"].fillna(0.0), 0.0, atol=1e-9)
     assert (judged["agreement"] == "yes").all()
@@ -127,7 +129,23 @@ def test_provenance_lists_the_nwb_file(exported):
     _mode, _path, result = exported
     assert (result.out_dir / "recordings.nwb").stat().st_size > 10_000
     prov = json.loads((result.out_dir / "provenance.json").read_text())
-    assert prov["seed"] == 5
+    assert prov["nwb_file"] == "recordings.nwb" and prov["seed"] == 5
+    assert Path(prov["protocol_path"]).is_absolute()
+
+
+def test_simulated_data_stay_marked_after_import(exported, tmp_path, capsys):
+    # the export says SIMULATED; read back it must not pass for recordings from cells
+    from protolang.report.run_report import write_report
+
+    _mode, path, result = exported
+    back = import_recordings(path, tmp_path / "set", nwb=str(result.out_dir / "recordings.nwb"))
+    assert back.provenance["simulated"] is True
+    assert "SIMULATED data read back" in write_report(back.out_dir).read_text(encoding="utf-8")
+    assert main(["compare", str(result.out_dir), str(tmp_path / "set")]) == 0
+    assert "holds simulated data" in capsys.readouterr().err
+    # the comparison may not overwrite a run folder's own tables
+    assert main(["compare", str(result.out_dir), str(tmp_path / "set"), "--out", str(result.out_dir)]) == 1
+    assert "would be replaced" in capsys.readouterr().err
 
 
 CELLS = """# Invented test protocol: two classes characterised with a small step family

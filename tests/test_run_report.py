@@ -302,8 +302,26 @@ def test_protocol_text_only_when_unchanged(run_folder, tmp_path):
     assert "has changed since the run" in (folder / "report.html").read_text(encoding="utf-8")
 
     prov["protocol_file"] = str(tmp_path / "gone.protocol")
+    prov.pop("protocol_path", None)
     prov_path.write_text(json.dumps(prov))
     assert "no longer exists" in write_report(folder).read_text(encoding="utf-8")
+
+
+@pytest.mark.brian2
+@pytest.mark.slow
+def test_protocol_text_found_from_another_folder(run_folder, tmp_path, monkeypatch):
+    # a relative protocol_file is found through the absolute path the run also recorded
+    folder = copy_run(run_folder, tmp_path)
+    prov_path = folder / "provenance.json"
+    prov = json.loads(prov_path.read_text())
+    absolute = Path(prov["protocol_path"])
+    prov["protocol_file"] = absolute.name          # as if run from the protocol's own folder
+    prov_path.write_text(json.dumps(prov))
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    text = write_report(folder).read_text(encoding="utf-8")
+    assert "unchanged since the run" in text and "no longer exists" not in text
 
 
 @pytest.mark.brian2

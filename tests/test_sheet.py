@@ -187,9 +187,12 @@ def _protocol_copy(protocol: Path, folder: Path, edit: str = "") -> Path:
     return path
 
 
-def _fake_run(folder: Path, sha: str, tables: bool) -> Path:
+def _fake_run(folder: Path, sha: str, tables: bool, circuit: str | None = None, kind: str | None = None) -> Path:
     folder.mkdir(parents=True)
-    (folder / "provenance.json").write_text(json.dumps({"protocol_sha256": sha}))
+    prov = {"protocol_sha256": sha, "circuit_sha256": circuit}
+    if kind:
+        prov["kind"] = kind
+    (folder / "provenance.json").write_text(json.dumps(prov))
     if tables:
         (folder / "tables").mkdir()
     return folder
@@ -198,14 +201,20 @@ def _fake_run(folder: Path, sha: str, tables: bool) -> Path:
 def test_bad_input_gives_clear_errors_and_writes_nothing(protocol, tmp_path):
     out = tmp_path / "sheet"
     sha = hashlib.sha256(protocol.read_text().encode()).hexdigest()
+    circuit = protolang.load(protocol).plan().circuit_hash
     cases = [
         (dict(protocol_path=tmp_path / "missing.protocol"), "protocol file", "not found"),
         (dict(run_dir=tmp_path / "no_run"), "run folder", "not found"),
         (dict(run_dir=tmp_path), "provenance.json", "not a run folder"),
         (dict(run_dir=_fake_run(tmp_path / "other", "0" * 64, tables=True)), "another protocol text",
          "predictions would be for another protocol"),
-        (dict(run_dir=_fake_run(tmp_path / "empty", sha, tables=True)), "has no table 'connections'",
+        (dict(run_dir=_fake_run(tmp_path / "empty", sha, tables=True, circuit=circuit)), "has no table 'connections'",
          "tables/connections.parquet"),
+        # predictions of another circuit, or a lab's recordings shown as model output, would mislead
+        (dict(run_dir=_fake_run(tmp_path / "recircuited", sha, tables=True, circuit="0" * 64)), "another circuit",
+         "predictions would be for another model"),
+        (dict(run_dir=_fake_run(tmp_path / "lab", sha, tables=True, circuit=circuit, kind="recordings")),
+         "is a recording set", "model outputs only"),
         (dict(point=3), "--point 4 is outside", "1 to 1"),
     ]
     for kwargs, needle, more in cases:

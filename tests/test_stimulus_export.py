@@ -185,7 +185,7 @@ def test_header_units_rate_and_voltage_clamp_command(tmp_path):
     assert header_value(header, "sweeps using this waveform").startswith("1-2")
     assert header_value(header, "sweep interval").startswith("5 s")
     assert header_value(header, "sweep length").startswith("1200 ms (12000 samples)")
-    assert any("invented-model protocol" in line and "approvals" in line for line in header)
+    assert any("model protocol" in line and "approvals" in line for line in header)
     np.testing.assert_allclose(np.diff(data[:, 0]), 1 / rate, rtol=0, atol=1e-12)
     assert len(data) == 12000
 
@@ -226,6 +226,10 @@ def test_scan_point_picks_its_amplitude(tmp_path):
     exp = protolang.load(path)
     q = [stimulus_waveforms(exp.plan(k), 20e3)[0].charge for k in range(2)]
     assert q == pytest.approx([9 * 1e-9 * 2e-3, 9 * 2e-9 * 2e-3], rel=1e-12)
+    # the files of a point say which point they are
+    assert _cli(["stimulus", str(path), "--out", str(tmp_path / "p2"), "--point", "2"]) == 0
+    header = (tmp_path / "p2" / "pre_sweeptype1.csv").read_text().splitlines()[:6]
+    assert "# scan point: 2 of 2: @amp = 2 nA" in header
 
 
 def _cli(argv):

@@ -116,8 +116,16 @@ def compare_folders(model_dir: str | os.PathLike, recorded_dir: str | os.PathLik
     if diffs:
         warnings.append("bath differs between model and recordings: " + "; ".join(diffs))
     sources = ", ".join(Path(s["file"]).name for s in rec_prov.get("sources", [])) or str(recorded_dir)
-    refs = recorded_references(recorded, within=within, source=f"recordings: {sources}",
+    label = "simulated data read back" if rec_prov.get("simulated") else "recordings"
+    if rec_prov.get("simulated"):
+        warnings.append(f"{str(recorded_dir)!r} holds simulated data (a protolang NWB export read back), "
+                        f"not recordings from cells")
+    refs = recorded_references(recorded, within=within, source=f"{label}: {sources}",
                                conditions=_bath_text(rbath), differences="; ".join(diffs))
+    # a probability from pairs all chosen as connected ("receiving from") measures nothing
+    chosen = [t.get("connections") for t in (model, recorded)]
+    if all(c is not None and not c.empty and c["connected"].astype(bool).all() for c in chosen):
+        refs = [r for r in refs if r["measure"] != "probability"]
     if not refs:
         raise error(f"recording set {str(recorded_dir)!r} has no measure to compare", None,
                     expected="tables with connection or cell measures", hint="check the protocol's measure lines")
@@ -127,6 +135,10 @@ def compare_folders(model_dir: str | os.PathLike, recorded_dir: str | os.PathLik
     table.insert(0, "model_run", str(Path(model_dir)))
     if out is not None:
         out = Path(out)
+        if (out / "provenance.json").exists() or (out / "plan.json").exists():
+            raise error(f"--out {str(out)!r} is a run folder or recording set: its own comparison table would be "
+                        f"replaced", None, expected="a folder of its own for the comparison",
+                        hint="e.g. --out comparisons/model_vs_lab")
         out.mkdir(parents=True, exist_ok=True)
         write_tables(out, {"comparison": table})
     return table, warnings

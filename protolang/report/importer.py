@@ -84,6 +84,21 @@ class RecordingSet:
     sources: list[str]
     conditions: dict = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    simulated: bool = False     # the source says its data are simulated (protolang's own NWB export)
+
+
+def _check_length(plan: "Plan", rset: RecordingSet, rmap: RecordingMap | None) -> None:
+    """Every stimulus event of the protocol (or the map's stimulus times) must fall inside the sweeps."""
+    first = next(iter(rset.repeats[0].cells.values()))
+    length = first.traces.shape[-1] * rset.sample_dt
+    times = [e.time for r in plan.roles for e in r.events]
+    if rmap is not None and rmap.stimulus_times:
+        times = list(rmap.stimulus_times)
+    if times and max(times) >= length:
+        raise error(f"the recorded sweeps last {length * 1e3:g} ms, but the protocol's last stimulus event is at "
+                    f"{max(times) * 1e3:g} ms ({', '.join(rset.sources[:2])})", None,
+                    expected="sweeps that contain every stimulus event and its response",
+                    hint="import the full sweeps, or give the rig's event times with stimulus_times in the map")
 
 
 # --- checks shared by the readers ------------------------------------------------------------
@@ -195,6 +210,9 @@ def read_csv_set(rmap: RecordingMap, plan: "Plan") -> RecordingSet:
             raise error(f"{where}: cannot read CSV file {str(entry.file)!r}: {exc}", entry.span,
                         expected="comma-separated columns with a header line") from None
         file = str(entry.file)
+        if len(frame) < 2:
+            raise error(f"{file} has {len(frame)} data row(s)", entry.span, expected="one row per sample of a sweep",
+                        hint="check that the file holds the traces, not only their header")
         columns = [str(c) for c in frame.columns]
         # sample interval
         dt = None if rmap.sample_rate is None else 1.0 / rmap.sample_rate
@@ -423,8 +441,11 @@ def read_nwb_set(path: str, plan: "Plan", rmap: RecordingMap | None) -> Recordin
     notes = []
     if any(len(s.data) != n_samples for s in content.series):
         notes.append(f"series of unequal length were cut to the shortest, {n_samples} samples")
+    simulated = str(content.session.get("notes") or "").lstrip().upper().startswith("SIMULATED")
+    if simulated:
+        notes.append("the NWB file says its data are simulated (a protolang export), not recorded from cells")
     return RecordingSet(sample_dt=1.0 / rate, repeats=repeats, sources=[str(path)],
-                        conditions=dict(content.conditions), notes=notes)
+                        conditions=dict(content.conditions), notes=notes, simulated=simulated)
 
 
 # --- the recorded plan and recordings ------------------------------------------------------
@@ -570,6 +591,8 @@ def import_recordings(protocol: str | os.PathLike, out: str | os.PathLike | None
                     "activation or multi-cell patch)", None, expected="a protocol of recorded cells and their stimuli")
     roles = _protocol_roles(plan)
     rmap = read_map(map_path, roles) if map_path else None
+    if nwb is None and rmap is not None and rmap.file is not None:
+        nwb = str(rmap.file)     # the map names its NWB file
     if nwb is not None:
         say(f"reading {nwb}")
         rset = read_nwb_set(str(nwb), plan, rmap)
@@ -580,6 +603,7 @@ def import_recordings(protocol: str | os.PathLike, out: str | os.PathLike | None
         say(f"reading {len(rmap.repeats)} CSV file(s) named in {map_path}")
         rset = read_csv_set(rmap, plan)
     threshold = rmap.spike_threshold if rmap is not None else DEFAULT_SPIKE_THRESHOLD
+    _check_length(plan, rset, rmap)
     rplan = recorded_plan(plan, rset, rmap)
     recordings = build_recordings(rplan, rset, threshold)
     say(f"collecting tables: {rplan.n_repeat} repeat(s) x {rplan.n_sweeps} sweep(s)")
@@ -587,7 +611,10 @@ def import_recordings(protocol: str | os.PathLike, out: str | os.PathLike | None
     sources = [{"file": str(Path(s).resolve()), "sha256": _sha256(s)} for s in rset.sources]
     prov = {
         "kind": "recordings",
+        # True when the source says it is simulated (protolang's own export read back): not data from cells
+        "simulated": rset.simulated,
         "protocol_file": exp.path,
+        "protocol_path": str(Path(exp.path).resolve()) if exp.path else None,
         "protocol_sha256": hashlib.sha256(exp.text.encode()).hexdigest(),
         "circuit_file": plan.circuit_file,
         "circuit_sha256": plan.circuit_hash,

@@ -486,20 +486,14 @@ def _read_provenance(run_dir: Path) -> dict:
 
 
 def _protocol_path(prov: dict, prov_path: Path) -> Path:
-    """The run's protocol file: as recorded, else (a moved project) the same name beside the run folder."""
+    """The run's protocol file (:func:`protolang.report.write.locate_protocol`), else the recorded path."""
+    from .write import locate_protocol
+
     recorded = prov.get("protocol_file")
     if not recorded:
         raise error(f"{str(prov_path)!r} names no protocol file (field 'protocol_file')", None,
                     expected="a run of a protocol file", hint="run the protocol from its file, then export")
-    path = Path(recorded)
-    if path.exists():
-        return path
-    run_dir = prov_path.parent
-    for base in (run_dir.parent, run_dir.parent.parent):
-        for candidate in ((base / path) if not path.is_absolute() else None, base / path.name):
-            if candidate is not None and candidate.is_file():
-                return candidate
-    return path
+    return locate_protocol(prov, prov_path.parent) or Path(recorded)
 
 
 def _as_run(plan: "Plan", prov: dict) -> str:

@@ -5,6 +5,7 @@ together (the protocol's ``repeat``), what unit the data carry, the sample rate,
 lab knows that the data do not say (whether a pair was connected, the soma distance). Layout::
 
     # recording map (invented example)
+    file: cells.nwb              # an NWB file (else --nwb), or CSV files under repeats
     sample_rate: 20 kHz          # CSV traces: samples per second (or give time_column)
     time_column: time_s          # optional CSV column of sample times in seconds
     sweeps: 20                   # optional: use only the first N sweeps of every repeat
@@ -38,7 +39,7 @@ from ..language.units import UNITS, parse_quantity
 MAP_KEYS = ("sample_rate", "time_column", "sweeps", "spike_threshold", "stimulus_times", "cells",
             "repeats", "file", "note")
 REPEAT_KEYS = ("file", "electrodes", "connected", "distance", "note")
-CELL_KEYS = ("column", "unit", "electrode")
+CELL_KEYS = ("column", "unit")
 DEFAULT_SPIKE_THRESHOLD = -0.020   # V: an overshooting action potential crosses it, a PSP does not
 # trace units a map may name: unit -> (kind, factor to SI)
 TRACE_UNITS = {"V": ("potential", 1.0), "mV": ("potential", 1e-3), "uV": ("potential", 1e-6),
@@ -258,7 +259,13 @@ def read_map(path: str | Path, roles: dict[str, str]) -> RecordingMap:
                 raise error(f"{key}.distance must be 0 or more", _span(path, fields["distance"][1]),
                             expected="a length such as '85 um'")
         repeats.append(RepeatEntry(file, electrodes, connected, distance, _span(path, node)))
-    file = base / _scalar(path, top["file"][1], "file", "a file name") if "file" in top else None
+    file = None
+    if "file" in top:
+        file = base / _scalar(path, top["file"][1], "file", "a file name")
+        if file.suffix.lower() != ".nwb":
+            raise error(f"the map's top-level 'file' names {file.name!r}, not an NWB file", _span(path, top["file"][1]),
+                        expected="an .nwb file (CSV files are named per repeat: repeats: - file: NAME.csv)",
+                        hint="move it under 'repeats'")
     return RecordingMap(path, sample_rate, time_column, sweeps, threshold, stim, cells, repeats, file, spans)
 
 

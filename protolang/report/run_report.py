@@ -289,8 +289,9 @@ def _summary(plan: dict, prov: dict, plan_note: str | None) -> str:
     pairs: list[tuple[str, object]] = []
     if _is_recording_set(prov):
         files = [str(x.get("file")) if isinstance(x, dict) else str(x) for x in prov.get("sources") or []]
-        pairs.append(("source", "real recordings, imported (not simulated)"
-                      + (": " + ", ".join(files) if files else "")))
+        what = ("SIMULATED data read back from a protolang NWB export (not recorded from cells)"
+                if prov.get("simulated") else "real recordings, imported (not simulated)")
+        pairs.append(("source", what + (": " + ", ".join(files) if files else "")))
     pairs.append(("protocol file", prov.get("protocol_file") or plan.get("protocol_file") or "not recorded"))
     circuit = prov.get("circuit_file") or plan.get("circuit_file")
     seed = prov.get("seed", plan.get("seed"))
@@ -320,6 +321,8 @@ def _summary(plan: dict, prov: dict, plan_note: str | None) -> str:
     engine = prov.get("engine")
     if isinstance(engine, dict) and engine:
         pairs.append(("engine target", engine.get("target") or "not recorded"))
+    elif _is_recording_set(prov) and prov.get("simulated"):
+        pairs.append(("engine target", "none here: the data were simulated by an earlier run and read back"))
     elif _is_recording_set(prov):
         pairs.append(("engine target", "none: recordings are not simulated"))
     else:
@@ -338,12 +341,14 @@ def _summary(plan: dict, prov: dict, plan_note: str | None) -> str:
     return body
 
 
-def _protocol_text(prov: dict) -> str:
+def _protocol_text(prov: dict, run_dir: Path) -> str:
+    from .write import locate_protocol
+
     name = prov.get("protocol_file")
     digest = prov.get("protocol_sha256")
     if not name:
         return H.paragraph("Not available: the provenance names no protocol file.", cls="note")
-    path = Path(name)
+    path = locate_protocol(prov, run_dir) or Path(name)
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
@@ -601,14 +606,16 @@ def render_report(run_dir: str | os.PathLike, out: str | os.PathLike | None = No
 
     sections = [
         ("summary", "Summary", _summary(plan, prov, plan_note), []),
-        ("protocol", "Protocol", _protocol_text(prov), []),
+        ("protocol", "Protocol", _protocol_text(prov, run_dir), []),
         ("tables", "Tables", tables, table_links),
         ("figures", "Figures", figures, figure_links),
         ("plan", "Resolved plan", _plan_digest(plan, plan_file, run_dir), []),
         ("provenance", "Provenance", _provenance(prov), []),
         ("files", "Files", _files(run_dir.resolve(), skip), []),
     ]
-    kind = "a recording set (real recordings)" if _is_recording_set(prov) else "a run folder"
+    kind = "a run folder"
+    if _is_recording_set(prov):
+        kind = "a recording set (simulated data read back)" if prov.get("simulated") else "a recording set (real recordings)"
     head = H.paragraph(f"Report of {kind}: {run_dir.resolve()}", cls="note")
     nav = "<nav>\n<h2>Contents</h2>\n" + H.link_list(
         [(ident, name, children) for ident, name, _, children in sections]) + "</nav>\n"

@@ -38,7 +38,7 @@ from ..language.errors import error
 from . import html as H
 from .stimulus import (DEFAULT_RATE, StimulusWaveform, exported_roles, holding_text, mode_text, parse_rate,
                        plan_point, refuse_existing, replace_folder, stimulus_waveforms, sweep_ranges,
-                       temporary_folder, write_stimulus_files)
+                       temporary_folder, write_stimulus_files, scan_text)
 from .write import _new_figure, _save_figure, atomic_write
 
 if TYPE_CHECKING:
@@ -411,6 +411,11 @@ def _stimuli(protocol: ast.Protocol, plan: "Plan", waves: list[StimulusWaveform]
                and (r.noise or r.poisson)]
     if no_file:
         sec.blocks.append(Para("Random or synaptic inputs only (no stimulus file): " + ", ".join(no_file), note=True))
+    held_only = [r.name for r in plan.roles if r.recorded and r.mode == "current clamp" and r.spike_times is None
+                 and r not in exported_roles(plan) and not (r.noise or r.poisson)]
+    if held_only:
+        sec.blocks.append(Para("Recorded without a stimulus (no stimulus file; only the holding set in the recording "
+                               "configuration): " + ", ".join(held_only), note=True))
     for w in waves:
         what = "command potential" if w.voltage_clamp else "injected current"
         charge = f"; injected charge {w.charge * 1e12:.4g} pC per sweep" if w.charge is not None else ""
@@ -585,7 +590,7 @@ def _run_error(message: str, expected: str, hint: str):
 
 
 def read_run_tables(run_dir: Path, protocol_file: str, sha: str, point: int, n_points: int,
-                    names: set[str]) -> tuple[dict, dict]:
+                    names: set[str], circuit_sha: str | None = None) -> tuple[dict, dict]:
     """Check a run folder against the protocol text and read the tables ``names`` of one point.
 
     Args:
@@ -595,6 +600,8 @@ def read_run_tables(run_dir: Path, protocol_file: str, sha: str, point: int, n_p
         point: the scan point, 0-based.
         n_points: how many scan points the protocol has.
         names: the tables to read.
+        circuit_sha: sha256 of the circuit file the protocol resolves against now; must equal
+            the run's ``circuit_sha256`` (predictions of another circuit are refused).
 
     Returns:
         ``(tables, provenance)``.
@@ -624,6 +631,16 @@ def read_run_tables(run_dir: Path, protocol_file: str, sha: str, point: int, n_p
             f"{str(theirs)[:12]}...) than {protocol_file!r} (sha256 {sha[:12]}...): its predictions would be for "
             f"another protocol", "the run folder of this protocol file, unchanged since the run",
             f"give the run folder of this protocol, or run it again: protolang run {protocol_file} --out RUN_DIR")
+    if prov.get("kind") == "recordings":
+        raise _run_error(f"{str(run_dir)!r} is a recording set (imported data), not a model run: the sheet's "
+                         f"predictions column holds model outputs only", "a run folder written by `protolang run`",
+                         f"give the model's run folder: protolang run {protocol_file} --out RUN_DIR")
+    if circuit_sha is not None and prov.get("circuit_sha256") != circuit_sha:
+        raise _run_error(
+            f"run folder {str(run_dir)!r} was made with another circuit file (circuit_sha256 "
+            f"{str(prov.get('circuit_sha256'))[:12]}...) than the one {protocol_file!r} names now "
+            f"(sha256 {circuit_sha[:12]}...): its predictions would be for another model",
+            "a run of this protocol on this circuit", f"run it again: protolang run {protocol_file} --out RUN_DIR")
     base = run_dir
     if (run_dir / "points").is_dir():
         base = run_dir / "points" / f"{point + 1:02d}"
@@ -1110,7 +1127,7 @@ def write_sheet(protocol_path: str | os.PathLike, out_dir: str | os.PathLike, *,
     if run_dir is not None:
         run_path = Path(run_dir)
         tables, prov = read_run_tables(run_path, str(protocol_path), sha, point, len(exp.points()),
-                                       tables_needed(rows))
+                                       tables_needed(rows), circuit_sha=plan.circuit_hash)
         predicted = model_predictions(rows, tables)
     sections = [
         _purpose(exp, plan, point, sha),
@@ -1129,7 +1146,7 @@ def write_sheet(protocol_path: str | os.PathLike, out_dir: str | os.PathLike, *,
     tmp = temporary_folder(out)
     try:
         written: dict[str, Path] = {}
-        for path in write_stimulus_files(plan, waves, tmp / STIMULI_DIR):
+        for path in write_stimulus_files(plan, waves, tmp / STIMULI_DIR, scan_text(exp, point)):
             written[f"{STIMULI_DIR}/{path.name}"] = path
         figures = _figures(waves, tmp / FIGURES_DIR)
         for path in figures.values():

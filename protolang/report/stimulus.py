@@ -43,7 +43,7 @@ MIN_SAMPLES_PER_EDGE = 2            # a pulse or step shorter than 2 samples is 
 MIN_SAMPLES_PER_PERIOD = 10         # a sine or chirp needs at least 10 samples per period
 MAX_SAMPLES = 20_000_000            # all files together; about 0.5 GB of text
 STIMULUS_SUFFIX = ".csv"
-CAUTION_LINE = ("invented-model protocol: generated from an in-silico protocol on a computational model; "
+CAUTION_LINE = ("model protocol: generated from an in-silico protocol on a computational model; "
                 "check it against the lab's own approvals, safety rules and animal-care protocols (they take "
                 "precedence) and every amplitude against the amplifier's limits and the cell's health before use")
 
@@ -327,13 +327,17 @@ def _edges_off_grid(role: "RolePlan", rate: float) -> bool:
     return any(abs(t * rate - round(t * rate)) > 1e-6 for t in times)
 
 
-def stimulus_header(plan: "Plan", role: "RolePlan", wave: StimulusWaveform) -> list[str]:
-    """The comment lines of one stimulus file (without the leading ``# ``)."""
+def stimulus_header(plan: "Plan", role: "RolePlan", wave: StimulusWaveform, scan: str | None = None) -> list[str]:
+    """The comment lines of one stimulus file (without the leading ``# ``); ``scan`` names the scan point."""
     n = len(wave.time)
     lines = [
         "protolang stimulus file",
         f"protocol: {plan.title}",
         f"protocol file: {Path(plan.protocol_file).name} (sha256 {plan.protocol_hash or 'unknown'})",
+    ]
+    if scan:
+        lines.append(f"scan point: {scan}")
+    lines += [
         f"role: {role.name}",
         f"cell class: {role.cell_class}",
         f"clamp mode: {mode_text(role)}",
@@ -366,23 +370,24 @@ def stimulus_header(plan: "Plan", role: "RolePlan", wave: StimulusWaveform) -> l
     return lines
 
 
-def stimulus_csv(plan: "Plan", wave: StimulusWaveform) -> str:
+def stimulus_csv(plan: "Plan", wave: StimulusWaveform, scan: str | None = None) -> str:
     """The whole text of one stimulus file."""
     role = plan.role(wave.role)
-    head = "".join(f"# {line}\n" for line in stimulus_header(plan, role, wave))
+    head = "".join(f"# {line}\n" for line in stimulus_header(plan, role, wave, scan))
     body = "\n".join(f"{t:.10g},{v:.10g}" for t, v in zip(wave.time.tolist(), wave.values.tolist()))
     return f"{head}time_s,{wave.column}\n{body}\n"
 
 
-def write_stimulus_files(plan: "Plan", waves: list[StimulusWaveform], folder: str | os.PathLike) -> list[Path]:
-    """Write the files of ``waves`` into ``folder`` (created), each one atomically.
+def write_stimulus_files(plan: "Plan", waves: list[StimulusWaveform], folder: str | os.PathLike,
+                         scan: str | None = None) -> list[Path]:
+    """Write the files of ``waves`` into ``folder`` (created), each one atomically; ``scan`` names the point.
 
     Returns:
         The paths written, in the order of ``waves``.
     """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
-    texts = [(folder / w.file_name, stimulus_csv(plan, w)) for w in waves]   # everything computed first
+    texts = [(folder / w.file_name, stimulus_csv(plan, w, scan)) for w in waves]   # everything computed first
     written = []
     for path, text in texts:
         def write(tmp: str, text: str = text) -> None:
@@ -435,7 +440,7 @@ def _is_stimulus_file(path: Path) -> bool:
 
 
 def export_stimuli(plan: "Plan", out_dir: str | os.PathLike, rate: float = DEFAULT_RATE, *,
-                   force: bool = False) -> list[Path]:
+                   force: bool = False, scan: str | None = None) -> list[Path]:
     """Write one stimulus CSV file per role and sweep type into the new folder ``out_dir``.
 
     All waveforms are computed first, then written into a temporary folder next to ``out_dir``
@@ -446,6 +451,7 @@ def export_stimuli(plan: "Plan", out_dir: str | os.PathLike, rate: float = DEFAU
         out_dir: the folder to create.
         rate: sample rate in Hz.
         force: replace an existing folder that holds only stimulus files.
+        scan: the scan point, as text for the headers (e.g. "2 of 5: @rate = 20 Hz").
 
     Returns:
         The files written (final paths).
@@ -464,12 +470,21 @@ def export_stimuli(plan: "Plan", out_dir: str | os.PathLike, rate: float = DEFAU
                     hint="explicit spike times, noise and Poisson inputs have no stimulus file")
     tmp = temporary_folder(out)
     try:
-        names = [p.name for p in write_stimulus_files(plan, waves, tmp)]
+        names = [p.name for p in write_stimulus_files(plan, waves, tmp, scan)]
         replace_folder(tmp, out)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return [out / n for n in names]
+
+
+def scan_text(exp, point: int) -> str | None:
+    """``"K of N: @name = value, ..."`` for a scanned protocol's point (0-based), None without a scan."""
+    points = exp.points()
+    if len(points) < 2 and not points[0][0]:
+        return None
+    values = ", ".join(f"@{n} = {q}" for n, q in points[point][0].items())
+    return f"{point + 1} of {len(points)}: {values}"
 
 
 def plan_point(exp, point: int):
@@ -504,7 +519,7 @@ def cmd_stimulus(args: argparse.Namespace) -> int:
     rate = parse_rate(args.rate)
     exp = load(args.file)
     plan = plan_point(exp, args.point - 1)
-    paths = export_stimuli(plan, args.out, rate, force=args.force)
+    paths = export_stimuli(plan, args.out, rate, force=args.force, scan=scan_text(exp, args.point - 1))
     waves = {w.file_name: w for w in stimulus_waveforms(plan, rate)}
     for path in paths:
         w = waves[path.name]

@@ -467,3 +467,32 @@ def read_recordings_npz(path: str | os.PathLike) -> "Recordings":
         return Recordings(sample_dt=float(data["sample_dt"]), time=data["time"], traces=traces,
                           spikes=spikes, release=release, meta=json.loads(str(data["meta_json"])),
                           population=population)
+
+
+def locate_protocol(prov: dict, folder: str | os.PathLike) -> Path | None:
+    """The protocol file a run (or recording set) was made from, wherever the caller stands.
+
+    Tries the path as recorded (relative to the working folder), the absolute path the run
+    recorded (``protocol_path``), then (a moved project) the recorded path and its file name
+    beside the folder and one level up. The caller checks the file's hash.
+
+    Args:
+        prov: the folder's provenance.
+        folder: the run folder (or one point's folder).
+
+    Returns:
+        The first existing candidate, or None (also when the provenance names no file).
+    """
+    recorded = prov.get("protocol_file")
+    if not recorded:
+        return None
+    path = Path(recorded)
+    candidates = [path]
+    if prov.get("protocol_path"):
+        candidates.append(Path(prov["protocol_path"]))
+    here = Path(folder)
+    for base in (here.parent, here.parent.parent):
+        if not path.is_absolute():
+            candidates.append(base / path)
+        candidates.append(base / path.name)
+    return next((c for c in candidates if c.is_file()), None)
