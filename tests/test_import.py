@@ -150,8 +150,9 @@ def test_collectors_recover_the_known_synthetic_responses(imported):
     # Decay: the late phase of a difference of exponentials decays with t2 (REFERENCES.md A2);
     # the fit starts at the peak where the fast term is still ~5 %, plus noise: 5 %.
     assert linked["decay_tau_ms"].to_numpy() == pytest.approx([T2 / MS] * 3, rel=0.05)
-    # Paired-pulse ratio of the means: the synthetic second response is 0.8 x the first
-    # (it rides on the first's decay, which the collectors subtract; common practice).
+    # Paired-pulse ratio of the means: the synthetic second response is 0.8 x the first. The
+    # collectors measure it from its local baseline, with no extrapolation of the first response's
+    # decay (docs/measures.md), so the still-falling tail reads it ~3 % low here: tolerance 0.05.
     assert linked["ppr"].to_numpy() == pytest.approx([PPR] * 3, abs=0.05)
     # Latency: presynaptic crossing to 10 % of the peak = synaptic delay + t10 of the closed form.
     t10 = brentq(lambda x: float(unit_psp(x)) - 0.1, 1e-12, doe_peak_time(T1, T2))
