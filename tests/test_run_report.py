@@ -17,53 +17,22 @@ import pytest
 
 import protolang
 from protolang.language.errors import ProtocolError
+from conftest import SMALL_PAIR_EVENTS
 from protolang.report.run_report import MAX_TABLE_ROWS, add_report_parser, write_report
 
 ROOT = Path(__file__).resolve().parents[1]
-CIRCUIT = ROOT / "protolang" / "demo" / "slab.circuit.yaml"
 CHROMIUM = Path("/usr/bin/chromium")
 CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                   "--disable-background-networking", "--disable-component-update", "--disable-sync"]
 SECTIONS = ["Contents", "Summary", "Protocol", "Tables", "Figures", "Resolved plan", "Provenance", "Files"]
 
-# Invented demo scenario (not a replay of any published data set): a small version of the demo
-# pair protocol, so the run takes seconds.
-PROTOCOL = f"""\
-# Invented demo scenario (not a replay of any published data set).
-protocol "report test: deep pyramid pairs, 4 pulses at 20 Hz"
-circuit "{CIRCUIT}" seed 7
-
-bath:
-    calcium 2.0 mM
-    magnesium 1.0 mM
-
-cells:
-    pre is pyramidal_deep
-    post is pyramidal_deep within 150 um of pre, receiving from pre
-    repeat 4
-
-sweeps 3 every 1 s
-
-record pre: current clamp
-record post: current clamp, holding -70 mV, noise 0.03 mV
-
-stimulate pre:
-    train 4 pulses of 1.5 nA for 2 ms at 20 Hz from 100 ms
-
-measure post:
-    responses to pre
-"""
 
 
 # -- helpers --------------------------------------------------------------------------------------
 @pytest.fixture(scope="module")
-def run_folder(tmp_path_factory) -> Path:
-    """One real run, shared by the tests of this module (tests copy it before changing it)."""
-    base = tmp_path_factory.mktemp("report_run")
-    protocol = base / "pair.protocol"
-    protocol.write_text(PROTOCOL, encoding="utf-8")
-    result = protolang.load(protocol).run(base / "run", target="auto")
-    return result.out_dir
+def run_folder(small_pair_run) -> Path:
+    """One real run, shared by the tests (tests copy it before changing it)."""
+    return small_pair_run
 
 
 def copy_run(run_folder: Path, tmp_path: Path) -> Path:
@@ -214,7 +183,7 @@ def test_report_renders_tables_and_figures_in_chromium(run_folder, tmp_path):
     shown_distance = np.array([float(r[col]) for r in shown["rows"]])
     np.testing.assert_allclose(shown_distance, connections["distance_um"].to_numpy(), rtol=1e-3)
     responses = pd.read_csv(folder / "tables" / "responses.csv")
-    assert len(dom.table_in("table-responses")["rows"]) == len(responses) == 4 * 3 * 4  # pairs x sweeps x pulses
+    assert len(dom.table_in("table-responses")["rows"]) == len(responses) == 4 * 3 * SMALL_PAIR_EVENTS  # pairs x sweeps x events
 
     # the protocol text that ran is shown, since the file is unchanged
     protocol_text = Path(json.loads((folder / "provenance.json").read_text())["protocol_file"]).read_text()

@@ -22,40 +22,11 @@ from protolang.report.sheet import MEASURED_COLUMN, NOTES_COLUMN, add_sheet_pars
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "protolang" / "demo"
 
-# modelled on protolang/demo/pyramid_pair_train.protocol, made small
-PAIR = f"""\
-# Invented test scenario: deep pyramid pairs, a 4-pulse 20 Hz train and a recovery probe.
-protocol "bench sheet test: deep pyramid pairs"
-circuit "{DEMO / 'slab.circuit.yaml'}" seed 7
-
-bath:
-    calcium 2.0 mM
-    magnesium 1.0 mM
-
-cells:
-    pre is pyramidal_deep
-    post is pyramidal_deep within 150 um of pre, receiving from pre
-    repeat 4
-
-sweeps 3 every 1 s
-
-record pre: current clamp
-record post: current clamp, holding -70 mV, noise 0.03 mV
-
-stimulate pre:
-    train 4 pulses of 1.5 nA for 2 ms at 20 Hz from 100 ms
-    pulse 1.5 nA for 2 ms at 500 ms
-
-measure post:
-    responses to pre
-"""
 
 
 @pytest.fixture(scope="module")
-def protocol(tmp_path_factory) -> Path:
-    path = tmp_path_factory.mktemp("protocol") / "pair.protocol"
-    path.write_text(PAIR)
-    return path
+def protocol(small_pair_protocol) -> Path:
+    return small_pair_protocol
 
 
 @pytest.fixture(scope="module")
@@ -65,11 +36,9 @@ def plain_sheet(protocol, tmp_path_factory) -> dict:
 
 
 @pytest.fixture(scope="module")
-def run_dir(protocol, tmp_path_factory) -> Path:
-    """One small real run of the protocol (Brian2)."""
-    out = tmp_path_factory.mktemp("run") / "run"
-    protolang.load(protocol).run(out)
-    return out
+def run_dir(small_pair_run) -> Path:
+    """One small real run of the protocol (Brian2), shared with other test files."""
+    return small_pair_run
 
 
 def page_text(paths: dict) -> str:
@@ -109,7 +78,7 @@ def test_sheet_states_solutions_cells_recording_timing_definitions_and_cautions(
                    "describes itself as invented"):
         assert needle in text, needle
     # purpose: title, the file's comments, its name and sha256
-    assert "bench sheet test: deep pyramid pairs" in text
+    assert "small test: deep pyramid pairs" in text
     assert "Invented test scenario: deep pyramid pairs" in text
     assert hashlib.sha256(protocol.read_text().encode()).hexdigest() in text
     # solutions
